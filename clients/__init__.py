@@ -1,0 +1,1 @@
+"""Clients: the command line (``stateworth ...``) and the Python gRPC client."""

@@ -1,0 +1,304 @@
+"""The structured transition operator of a compiled model.
+
+``(P x)(s) = E[x(s') | s]`` is applied backwards through the draw order, never forming P:
+
+1. start from ``x`` viewed on the grid, with every axis at its *next* value (fixed axes are the
+   same now and next, so they are batch dimensions throughout);
+2. for each random axis in reverse draw order, multiply by its factor table and sum out the
+   axis's next value; the table brings in the current axes it is given;
+3. counters and cycles are index maps: ``c' = g(c, status, status')`` is a gather, done at the
+   latest point that still has ``status'`` (before the status factor is summed out) or when a
+   table needs the current counter;
+4. transpose to the grid order.
+
+Each step is an elementwise product and a sum over one small axis inside one jitted function,
+so an apply costs about (grid size) x (sum of the sizes of the contracted axes), and memory is a
+few grid-sized arrays (times the status size where a frame holds status and status'). The
+transpose comes from :func:`jax.linear_transpose`.
+
+Shapes: ``mv`` takes ``(n,)`` or ``(n, k)`` and returns the same shape (k right-hand sides).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import scipy.sparse as sp
+
+from stateworth.rules.factors import Factor
+from stateworth.rules.grid import Grid
+
+
+@dataclass(frozen=True)
+class Step:
+    kind: str  # "contract" | "counter" | "cycle" | "finish"
+    key: str  # array name ("table.<axis>" or "index.<axis>")
+    perm: tuple[int, ...]  # transpose of the frame before the step
+    shape_in: tuple[int, ...] = ()  # frame shape after the transpose (for broadcasting)
+    extra: tuple = ()  # step-specific static data
+
+
+@dataclass(frozen=True)
+class Plan:
+    """The static part of an operator: shapes and the sequence of steps (hashable)."""
+
+    grid_shape: tuple[int, ...]
+    steps: tuple[Step, ...]
+
+    @property
+    def size(self) -> int:
+        return int(np.prod(self.grid_shape, dtype=np.int64))
+
+
+def counter_index(spec, axis: str) -> np.ndarray:
+    """``idx[c, st, st']``: the next level of counter ``axis`` from level ``c`` when the status
+    moves ``st -> st'``. Events: join (non-member -> member), lapse (member -> non-member),
+    change (any status change) reset to 0; otherwise +1 (capped at the last level) while the
+    *next* status satisfies ``advance_while``, else unchanged."""
+    ax = spec.axes[axis]
+    size = len(spec.axis_levels(axis))
+    st_levels = spec.axis_levels(spec.status_axis)
+    member = np.array([lv in spec.members for lv in st_levels])
+    aw = ax.advance_while if ax.advance_while is not None else "always"
+    if aw == "member":
+        adv = member
+    elif aw == "non_member":
+        adv = ~member
+    elif aw == "always":
+        adv = np.ones(len(st_levels), dtype=bool)
+    else:
+        adv = np.array([lv in aw for lv in st_levels])
+    S = len(st_levels)
+    idx = np.zeros((size, S, S), dtype=np.int32)
+    c = np.arange(size)[:, None, None]
+    nxt = np.where(adv[None, None, :], np.minimum(c + 1, size - 1), c)
+    nxt = np.broadcast_to(nxt, (size, S, S)).copy()
+    reset = np.zeros((S, S), dtype=bool)
+    for ev in ax.reset_on or []:
+        if ev == "join":
+            reset |= (~member)[:, None] & member[None, :]
+        elif ev == "lapse":
+            reset |= member[:, None] & (~member)[None, :]
+        elif ev == "change":
+            reset |= ~np.eye(S, dtype=bool)
+    nxt[:, reset] = 0
+    idx[...] = nxt
+    return idx
+
+
+def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
+    """Work out the step sequence symbolically (dimension names) for a checked spec."""
+    kinds = {a.name: a.kind for a in grid.axes}
+    sizes = {a.name: a.size for a in grid.axes}
+    status = spec.status_axis
+
+    def size_of(d: str) -> int:
+        return sizes[d.rstrip("'")]
+
+    dims = [a.name if a.kind == "fixed" else a.name + "'" for a in grid.axes]
+    pending = [a.name for a in grid.axes if a.kind in ("counter", "cycle")]
+    steps: list[Step] = []
+
+    def resolve(d: str) -> None:
+        nonlocal dims
+        if kinds[d] == "cycle":
+            front = [d + "'"]
+        else:
+            front = [d + "'", status + "'"] + ([status] if status in dims else [])
+        rest = [x for x in dims if x not in front]
+        perm = tuple(dims.index(x) for x in front + rest)
+        has_cur = status in dims
+        shape_in = tuple(size_of(x) for x in front + rest)
+        steps.append(Step(kinds[d], f"index.{d}", perm, shape_in, (has_cur,)))
+        if kinds[d] == "cycle":
+            dims = [d] + rest
+        else:
+            dims = [d, status, status + "'"] + rest
+        pending.remove(d)
+
+    for f in reversed(factors):
+        tdims = [g[5:] + "'" if g.startswith("next.") else g for g in f.given] + [f.axis + "'"]
+        for d in list(pending):
+            if d in tdims or (f.axis == status and kinds[d] == "counter"):
+                resolve(d)
+        nxt = f.axis + "'"
+        # frame -> (kept..., nxt); table dims aligned to (out..., nxt)
+        kept = [x for x in dims if x != nxt]
+        new = [x for x in tdims[:-1] if x not in kept]
+        out = kept + new
+        perm = tuple(dims.index(x) for x in kept + [nxt])
+        # table transpose into (present dims in out order..., nxt) and reshape with 1s for the rest
+        t_order = [x for x in out if x in tdims[:-1]]
+        t_perm = tuple(tdims.index(x) for x in t_order) + (len(tdims) - 1,)
+        t_shape = tuple(size_of(x) if x in tdims else 1 for x in out) + (size_of(nxt),)
+        f_shape = tuple(size_of(x) for x in kept) + tuple(1 for _ in new) + (size_of(nxt),)
+        steps.append(Step("contract", f"table.{f.axis}", perm, f_shape, (t_perm, t_shape)))
+        dims = out
+    for d in list(pending):
+        resolve(d)
+    # missing current dims: the value does not depend on them -> broadcast
+    target = list(grid.names)
+    missing = [x for x in target if x not in dims]
+    dims_full = dims + missing
+    perm = tuple(dims_full.index(x) for x in target)
+    steps.append(Step("finish", "", perm, tuple(size_of(x) for x in dims), (len(missing),)))
+    return Plan(grid.shape, tuple(steps))
+
+
+def _apply_single(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
+    """``x`` is ``(n,)``: one apply of P."""
+    frame = x.reshape(plan.grid_shape)
+    for st in plan.steps:
+        if st.kind == "contract":
+            t_perm, t_shape = st.extra
+            frame = jnp.transpose(frame, st.perm).reshape(st.shape_in)
+            table = jnp.transpose(arrays[st.key], t_perm).reshape(t_shape)
+            frame = jnp.sum(frame * table, axis=-1)
+        elif st.kind == "cycle":
+            frame = jnp.transpose(frame, st.perm)
+            n = frame.shape[0]
+            frame = jnp.take(frame, (jnp.arange(n) + 1) % n, axis=0)
+        elif st.kind == "counter":
+            (has_cur,) = st.extra
+            frame = jnp.transpose(frame, st.perm)
+            idx = arrays[st.key]  # (C, S, S')
+            C, S, S2 = idx.shape
+            if has_cur:
+                frame = frame[idx, jnp.arange(S2)[None, None, :], jnp.arange(S)[None, :, None]]
+            else:
+                frame = frame[idx, jnp.arange(S2)[None, None, :]]
+        elif st.kind == "finish":
+            (n_missing,) = st.extra
+            if n_missing:
+                frame = frame.reshape(frame.shape + (1,) * n_missing)
+            frame = jnp.transpose(frame, st.perm)
+            frame = jnp.broadcast_to(frame, plan.grid_shape)
+    return frame.reshape(-1)
+
+
+def _columns(f, x: jax.Array) -> jax.Array:
+    """Apply a single-vector map to each column of ``(n, k)``; sequential columns measured
+    faster on CPU than a batched frame (the batch dimension defeats XLA's fusion)."""
+    if x.ndim == 1:
+        return f(x)
+    return jax.lax.map(f, x.T).T
+
+
+def _apply(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
+    return _columns(partial(_apply_single, plan, arrays), x)
+
+
+def _apply_transpose(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
+    n = plan.size
+    tr = jax.linear_transpose(partial(_apply_single, plan, arrays), jax.ShapeDtypeStruct((n,), jnp.float64))
+    return _columns(lambda v: tr(v)[0], y)
+
+
+@jax.tree_util.register_pytree_node_class
+class GridOperator:
+    """The transition operator P of a compiled model (or its transpose).
+
+    ``arrays`` holds the factor tables (``table.<axis>``) and counter index maps
+    (``index.<axis>``): the pytree leaves, so a stack of operators from posterior draws can be
+    ``vmap``-ed. ``plan`` is static."""
+
+    def __init__(self, plan: Plan, arrays: dict, transposed: bool = False) -> None:
+        self.plan = plan
+        self.arrays = arrays
+        self.transposed = transposed
+        self.shape = (plan.size, plan.size)
+
+    def mv(self, x: jax.Array) -> jax.Array:
+        if self.transposed:
+            return _apply_transpose(self.plan, self.arrays, x)
+        return _apply(self.plan, self.arrays, x)
+
+    def transpose(self) -> "GridOperator":
+        return GridOperator(self.plan, self.arrays, not self.transposed)
+
+    def with_tables(self, tables: dict) -> "GridOperator":
+        """The same structure with other factor tables (a changed or drawn model)."""
+        arrays = dict(self.arrays)
+        for k, v in tables.items():
+            arrays[f"table.{k}"] = jnp.asarray(v, dtype=jnp.float64)
+        return GridOperator(self.plan, arrays, self.transposed)
+
+    def tree_flatten(self):
+        keys = tuple(sorted(self.arrays))
+        return tuple(self.arrays[k] for k in keys), (self.plan, keys, self.transposed)
+
+    @classmethod
+    def tree_unflatten(cls, aux, children):
+        plan, keys, transposed = aux
+        return cls(plan, dict(zip(keys, children)), transposed)
+
+
+def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray]) -> GridOperator:
+    plan = build_plan(spec, grid, factors)
+    arrays = {f"table.{k}": jnp.asarray(v, dtype=jnp.float64) for k, v in tables.items()}
+    for a in grid.axes:
+        if a.kind == "counter":
+            arrays[f"index.{a.name}"] = jnp.asarray(counter_index(spec, a.name))
+    return GridOperator(plan, arrays)
+
+
+def explicit_csr(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray],
+                 max_states: int = 3_000_000, chunk_entries: int = 4_000_000) -> sp.csr_matrix:
+    """P as a scipy CSR matrix, built by enumerating every (state, next random levels) pair.
+
+    Independent of the structured apply (it walks the draws forward), so it doubles as a
+    cross-check. Memory grows with the number of non-zeros; refused above ``max_states``."""
+    n = grid.size
+    if n > max_states:
+        from stateworth.errors import GridTooLargeError
+        raise GridTooLargeError(f"explicit matrix export is for grids up to {max_states:,} states; this one has {n:,}")
+    names = list(grid.names)
+    pos = {nm: i for i, nm in enumerate(names)}
+    kinds = {a.name: a.kind for a in grid.axes}
+    status = spec.status_axis
+    rnd = [f.axis for f in factors]
+    rsizes = [grid.axis(r).size for r in rnd]
+    K = int(np.prod(rsizes))
+    combos = [c.reshape(-1) for c in np.indices(rsizes)]  # next levels of random axes, (K,)
+    nxt = {r: combos[i][None, :] for i, r in enumerate(rnd)}
+    counters = {a.name: counter_index(spec, a.name) for a in grid.axes if a.kind == "counter"}
+    B = max(1, chunk_entries // K)
+    rows_all, cols_all, vals_all = [], [], []
+    for start in range(0, n, B):
+        flat = np.arange(start, min(n, start + B))
+        cur_codes = np.unravel_index(flat, grid.shape)
+        cur = {nm: cur_codes[i][:, None] for i, nm in enumerate(names)}
+        prob = np.ones((len(flat), K))
+        for f in factors:
+            idx = []
+            for g in f.given:
+                idx.append(nxt[g[5:]] if g.startswith("next.") else cur[g])
+            idx.append(nxt[f.axis])
+            prob = prob * tables[f.axis][tuple(np.broadcast_arrays(*idx))]
+        next_codes = []
+        for nm in names:
+            k = kinds[nm]
+            if k == "fixed":
+                next_codes.append(np.broadcast_to(cur[nm], prob.shape))
+            elif k == "cycle":
+                size = grid.axis(nm).size
+                next_codes.append(np.broadcast_to((cur[nm] + 1) % size, prob.shape))
+            elif k == "counter":
+                next_codes.append(counters[nm][cur[nm], cur[status], nxt[status]])
+            else:
+                next_codes.append(np.broadcast_to(nxt[nm], prob.shape))
+        col = np.ravel_multi_index([np.broadcast_to(c, prob.shape) for c in next_codes], grid.shape)
+        keep = prob > 0
+        rows_all.append(np.broadcast_to(flat[:, None], prob.shape)[keep])
+        cols_all.append(col[keep])
+        vals_all.append(prob[keep])
+    rows = np.concatenate(rows_all)
+    cols = np.concatenate(cols_all)
+    vals = np.concatenate(vals_all)
+    m = sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
+    m.sum_duplicates()
+    return m

@@ -1,0 +1,171 @@
+"""``solve``: policy evaluation ``(I - beta P) V = r`` on a compiled model or any operator.
+
+Methods:
+
+* ``dense``: LU on the dense matrix (grids up to ``DENSE_MAX`` states);
+* ``gmres``: restarted GMRES with the two-level preconditioner of :mod:`.preconditioner` when the
+  operator is a grid operator (Krylov with aggregation over the slow member/non-member modes);
+* ``value_iteration``: sweeps with McQueen-Porteus extrapolation (robust, slow: rate beta);
+* ``auto``: dense up to ``DENSE_MAX`` states, else gmres; it says what it picked in
+  ``Solution.method`` and ``Solution.notes``.
+
+Also: many right-hand sides at once (``(n, k)``), warm starts (``x0``), the transpose system
+``(I - beta P^T) x = mu`` for adjoints (``transpose=True``), finite horizons (``horizon=H``), and
+``beta = 1`` where P is sub-stochastic (absorbing chains).
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Sequence
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from stateworth import config
+from stateworth.errors import GridTooLargeError, QueryError
+from stateworth.solver.dense import solve_dense
+from stateworth.solver.gmres import gmres
+from stateworth.solver.horizon import horizon_values
+from stateworth.solver.result import Solution, Status
+from stateworth.solver.value_iteration import value_iteration
+
+DENSE_MAX = 2500
+METHODS = ("auto", "dense", "gmres", "value_iteration")
+
+
+def memory_needed(n: int, k: int, method: str, restart: int = 40) -> int:
+    """Bytes a solve plans to hold beyond the model: the Krylov basis (restart + 1 vectors per
+    column in flight), work vectors, and for ``dense`` the n x n matrix twice."""
+    if method == "dense":
+        return 8 * (2 * n * n + 6 * n * k)
+    return 8 * n * ((restart + 8) + 6 * k)
+
+
+def _resolve_inputs(model, rewards, beta):
+    from stateworth.rules.compiled import CompiledModel
+
+    if isinstance(model, CompiledModel):
+        op = model.operator
+        beta = model.beta if beta is None else beta
+        if rewards is None:
+            names = tuple(model.rewards)
+            r = np.stack([model.rewards[s] for s in names], axis=1)
+        elif isinstance(rewards, str):
+            names = (rewards,)
+            r = model.reward(rewards)[:, None]
+        elif isinstance(rewards, (list, tuple)) and all(isinstance(s, str) for s in rewards):
+            names = tuple(rewards)
+            r = np.stack([model.reward(s) for s in names], axis=1)
+        else:
+            r = np.asarray(rewards, dtype=np.float64)
+            r = r[:, None] if r.ndim == 1 else r
+            names = tuple(f"rhs{j}" for j in range(r.shape[1]))
+        return op, r, float(beta), names
+    op = model
+    if beta is None:
+        raise QueryError("beta is required when solving on a bare operator", field="beta")
+    r = np.asarray(rewards, dtype=np.float64)
+    r = r[:, None] if r.ndim == 1 else r
+    return op, r, float(beta), tuple(f"rhs{j}" for j in range(r.shape[1]))
+
+
+def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto", tol: float = 1e-10,
+          x0: np.ndarray | None = None, transpose: bool = False, horizon: int | None = None,
+          max_iter: int | None = None, restart: int = 40, raise_on_failure: bool = True,
+          stochastic: bool = True, preconditioner: str = "auto") -> Solution:
+    """Solve the discounted Bellman (policy-evaluation) equation.
+
+    ``model``: a :class:`~stateworth.rules.CompiledModel` or any operator with ``mv``/``transpose``.
+    ``rewards``: stream name(s) of the model (default all), or an array ``(n,)`` / ``(n, k)`` in
+    money per period. Returns a :class:`Solution` whose ``values`` are ``(n, k)`` in money (the
+    discounted sum of the stream from each state). ``stochastic=False`` declares that rows of P
+    may sum to less than 1 (needed for the value-iteration bracket to stay valid)."""
+    t0 = time.perf_counter()
+    if method not in METHODS:
+        raise QueryError(f"unknown method '{method}'; choose one of {', '.join(METHODS)}", field="method")
+    op, r, beta, names = _resolve_inputs(model, rewards, beta)
+    n, k = r.shape
+    if op.shape[0] != n:
+        raise QueryError(f"rewards have {n} rows but the operator has {op.shape[0]} states", field="rewards")
+    if not (0.0 < beta <= 1.0):
+        raise QueryError(f"beta must lie in (0, 1] (got {beta})", field="beta")
+    if not np.all(np.isfinite(r)):
+        raise QueryError("rewards contain NaN or infinite values", field="rewards")
+    A = op.transpose() if transpose else op
+    notes: list[str] = []
+
+    if horizon is not None:
+        if int(horizon) < 0:
+            raise QueryError(f"horizon must be a non-negative number of periods (got {horizon})", field="horizon")
+        v = _horizon_jit(A, jnp.asarray(r), beta, int(horizon))
+        v = np.asarray(v)
+        return Solution(values=v, streams=names, method="horizon", status=Status.CONVERGED,
+                        iterations=int(horizon), operator_applies=int(horizon), residual=0.0, bound=0.0,
+                        seconds=time.perf_counter() - t0, beta=beta, transpose=transpose,
+                        horizon=int(horizon), notes=[f"exact {horizon}-period sum"])
+
+    chosen = method
+    if method == "auto":
+        chosen = "dense" if n <= DENSE_MAX else "gmres"
+        notes.append(f"auto picked {chosen} for {n:,} states")
+    need = memory_needed(n, k, chosen, restart)
+    limit = config.memory_limit_bytes()
+    if need > limit:
+        raise GridTooLargeError(f"a {chosen} solve of {n:,} states x {k} right-hand sides needs about "
+                                f"{need / 1024**3:.1f} GB, over the limit of {limit / 1024**3:.1f} GB; use "
+                                "method='gmres' or raise STATEWORTH_MEMORY_LIMIT_GB")
+    rj = jnp.asarray(r)
+    xj = jnp.zeros_like(rj) if x0 is None else jnp.asarray(np.asarray(x0, dtype=np.float64).reshape(n, k))
+    bound = None
+    if chosen == "dense":
+        x, res_vec, status = solve_dense(A, rj, beta)
+        x = np.asarray(x)
+        rn = np.maximum(np.max(np.abs(r), axis=0), np.finfo(float).tiny)
+        residual = float(np.max(np.max(np.abs(np.asarray(res_vec)), axis=0) / rn))
+        iterations, applies = 1, n
+        status = Status(int(status))
+    elif chosen == "gmres":
+        mi = max_iter or 3000
+        x, iterations, applies, residual, status = _gmres_jit(A, rj, xj, beta, tol, restart, mi)
+        x = np.asarray(x)
+        iterations, applies, residual, status = int(iterations), int(applies), float(residual), Status(int(status))
+    else:  # value_iteration
+        mi = max_iter or 50000
+        x, lower, upper, iterations, residual, status, half = _vi_jit(A, rj, xj, beta, tol, mi, stochastic)
+        x = np.asarray(x)
+        iterations, residual, status = int(iterations), float(residual), Status(int(status))
+        applies = 2 * iterations + 1
+        bound = float(np.max(np.asarray(half)))
+    sol = Solution(values=x, streams=names, method=chosen, status=status, iterations=iterations,
+                   operator_applies=applies, residual=residual, bound=bound,
+                   seconds=time.perf_counter() - t0, beta=beta, transpose=transpose, notes=notes)
+    if raise_on_failure:
+        sol.raise_for_status(tol)
+    return sol
+
+
+from functools import partial  # noqa: E402
+
+
+@partial(jax.jit, static_argnames=("horizon",))
+def _horizon_jit(A, r, beta, horizon):
+    return horizon_values(A.mv, r, beta, horizon)
+
+
+@partial(jax.jit, static_argnames=("tol", "restart", "max_iter"))
+def _gmres_jit(A, r, x0, beta, tol, restart, max_iter):
+    def matvec(v):
+        return v - beta * A.mv(v)
+    return gmres(matvec, r, x0, tol=tol, restart=restart, max_iter=max_iter)
+
+
+@partial(jax.jit, static_argnames=("tol", "max_iter", "stochastic", "beta"))
+def _vi_jit(A, r, x0, beta, tol, max_iter, stochastic):
+    return value_iteration(A.mv, r, x0, beta, tol=tol, max_iter=max_iter, stochastic=stochastic)
+
+
+def solve_many(model, rhs: np.ndarray | Sequence, **kw) -> Solution:
+    """Alias of :func:`solve` for a stack of right-hand sides ``(n, k)``."""
+    return solve(model, rhs, **kw)
