@@ -22,7 +22,7 @@ from stateworth.solver.result import Status
 
 
 def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array, tol: float,
-               restart: int, max_iter: int):
+               restart: int, max_iter: int, precond_cost: int = 0):
     n = b.shape[0]
     m = restart
     bnorm = jnp.maximum(jnp.max(jnp.abs(b)), jnp.finfo(jnp.float64).tiny)
@@ -87,7 +87,7 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
         y = jax.scipy.linalg.solve_triangular(Rm, gy, lower=False)
         x = x + precond(V[:m].T @ y)
         res = jnp.max(jnp.abs(b - matvec(x))) / bnorm
-        return x, it + it_in, applies + it_in + 2, res, brk & (j == 0)
+        return x, it + it_in, applies + (it_in + 1) * (1 + precond_cost) + 1, res, brk & (j == 0)
 
     def outer_cond(state):
         x, it, applies, res, stuck = state
@@ -102,16 +102,17 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
 
 
 def gmres(matvec: Callable, b: jax.Array, x0: jax.Array, *, tol: float, restart: int = 40,
-          max_iter: int = 2000, precond: Callable | None = None):
+          max_iter: int = 2000, precond: Callable | None = None, precond_cost: int = 0):
     """Solve ``A x = b`` column by column for ``b`` of shape ``(n, k)``.
 
-    Returns ``(x, iterations, operator_applies, residual, status)``; iterations, applies and
-    residual are summed / maxed over columns and status is the worst column's."""
+    ``precond_cost`` is the number of operator applies one preconditioner call makes (for the
+    statistics). Returns ``(x, iterations, operator_applies, residual, status)``; iterations and
+    applies are summed over columns, the residual is the worst column's, and so is the status."""
     precond = precond or (lambda v: v)
 
     def one(args):
         bj, xj = args
-        return _gmres_one(matvec, precond, bj, xj, tol, restart, max_iter)
+        return _gmres_one(matvec, precond, bj, xj, tol, restart, max_iter, precond_cost)
 
     x, it, ap, res, st = jax.lax.map(one, (b.T, x0.T))
     return x.T, jnp.sum(it), jnp.sum(ap), jnp.max(res), jnp.max(st)

@@ -28,6 +28,7 @@ from stateworth.errors import GridTooLargeError, QueryError
 from stateworth.solver.dense import solve_dense
 from stateworth.solver.gmres import gmres
 from stateworth.solver.horizon import horizon_values
+from stateworth.solver.preconditioner import two_level
 from stateworth.solver.result import Solution, Status
 from stateworth.solver.value_iteration import value_iteration
 
@@ -128,7 +129,18 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
         status = Status(int(status))
     elif chosen == "gmres":
         mi = max_iter or 3000
-        x, iterations, applies, residual, status = _gmres_jit(A, rj, xj, beta, tol, restart, mi)
+        pc = None
+        if preconditioner not in ("auto", "two_level", "none"):
+            raise QueryError(f"unknown preconditioner '{preconditioner}'; choose auto, two_level or none",
+                             field="preconditioner")
+        from stateworth.rules.compiled import CompiledModel
+        if preconditioner != "none" and isinstance(model, CompiledModel):
+            pc = two_level(model, beta, transpose=transpose)
+            notes.append(f"two-level preconditioner: coarse blocks {pc.inv.shape[0]} x {pc.coarse.block}")
+        elif preconditioner == "two_level":
+            raise QueryError("the two-level preconditioner needs a compiled model, not a bare operator",
+                             field="preconditioner")
+        x, iterations, applies, residual, status = _gmres_jit(A, rj, xj, beta, tol, restart, mi, pc)
         x = np.asarray(x)
         iterations, applies, residual, status = int(iterations), int(applies), float(residual), Status(int(status))
     else:  # value_iteration
@@ -155,10 +167,13 @@ def _horizon_jit(A, r, beta, horizon):
 
 
 @partial(jax.jit, static_argnames=("tol", "restart", "max_iter"))
-def _gmres_jit(A, r, x0, beta, tol, restart, max_iter):
+def _gmres_jit(A, r, x0, beta, tol, restart, max_iter, pc):
     def matvec(v):
         return v - beta * A.mv(v)
-    return gmres(matvec, r, x0, tol=tol, restart=restart, max_iter=max_iter)
+    if pc is None:
+        return gmres(matvec, r, x0, tol=tol, restart=restart, max_iter=max_iter)
+    return gmres(matvec, r, x0, tol=tol, restart=restart, max_iter=max_iter,
+                 precond=lambda v: pc.apply(A.mv, beta, v), precond_cost=pc.cost)
 
 
 @partial(jax.jit, static_argnames=("tol", "max_iter", "stochastic", "beta"))
