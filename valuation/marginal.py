@@ -1,0 +1,90 @@
+"""Marginal value of transitions: what small changes to the chain are worth, from one adjoint solve.
+
+For a cohort objective J = mu . V with (I - beta P) V = r:
+
+* the adjoint lambda solves (I - beta P^T) lambda = mu; lambda_i is the discounted expected number
+  of periods the cohort spends in state i;
+* dJ/dP_ij = beta lambda_i V_j (differentiate (I - beta P) V = r: dV = (I - beta P)^{-1}(beta dP V
+  + dr), and mu^T (I - beta P)^{-1} = lambda^T);
+* P is a product of factor tables T (and r depends on T through the expected one-off amounts), so
+  dJ/dT = d/dT [beta lambda^T P(T) V + lambda^T r(T)] at fixed lambda and V: one vector-Jacobian
+  product of the operator apply, by implicit differentiation without differentiating the solver;
+* a table row must sum to one, so the value of "+1 point on entry (cell, a')" moves that entry by
+  0.01 and scales the row's other entries down in proportion (forbidden moves stay at zero):
+  per_point = 0.01 * (G[a'] - sum_{b != a'} G[b] T[b] / (1 - T[a'])), G = dJ/dT of the row.
+"""
+
+from __future__ import annotations
+
+from typing import Sequence
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from stateworth.valuation.answer import MarginalEntry
+from stateworth.valuation.change import _allowed
+from stateworth.valuation.draws import RewardParts
+
+
+@jax.jit
+def _table_gradients(op, tables, lam, v, beta, base, cols, masks, scale):
+    def f(tabs):
+        opd = op.with_tables(tabs)
+        j = beta * jnp.dot(lam, opd.mv(v))
+        if cols.shape[1]:
+            j = j + scale * jnp.dot(lam, jnp.sum(masks * opd.mv(cols), axis=1))
+        return j
+
+    return jax.grad(f)(tables)
+
+
+def table_gradients(model, lam: np.ndarray, v: np.ndarray, parts: RewardParts) -> dict[str, np.ndarray]:
+    """dJ/dT for every factor table (raw partials, same shapes as the tables)."""
+    tabs = {a: jnp.asarray(t) for a, t in model.tables.items()}
+    g = _table_gradients(model.operator, tabs, jnp.asarray(lam), jnp.asarray(v), jnp.float64(model.beta),
+                         jnp.asarray(parts.base), jnp.asarray(parts.cols), jnp.asarray(parts.masks), parts.scale)
+    return {a: np.asarray(x) for a, x in g.items()}
+
+
+def per_point(table: np.ndarray, grad: np.ndarray) -> np.ndarray:
+    """Value of +0.01 on each entry with proportional renormalisation of its row; NaN where the
+    entry is already 1 (no other mass to take)."""
+    rowsum = np.sum(grad * table, axis=-1, keepdims=True)
+    rest = 1.0 - table
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d = grad - (rowsum - grad * table) / rest
+    return np.where(rest > 1e-12, 0.01 * d, np.nan)
+
+
+def ranked_entries(model, gradients: dict[str, np.ndarray], top: int) -> list[MarginalEntry]:
+    """The ``top`` allowed factor entries by |per_point|, largest first."""
+    spec = model.spec
+    cands: list[tuple[float, str, tuple, float, float, float]] = []
+    for f in model.factors:
+        t, g = model.tables[f.axis], gradients[f.axis]
+        pp = per_point(t, g)
+        ok = _allowed(model, f) & np.isfinite(pp)
+        flat = np.where(ok, np.abs(pp), -1.0).reshape(-1)
+        k = min(top, int(np.sum(flat >= 0)))
+        if k == 0:
+            continue
+        idx = np.argpartition(-flat, k - 1)[:k]
+        for i in idx:
+            cell = np.unravel_index(int(i), t.shape)
+            cands.append((float(flat[i]), f.axis, cell, float(t[cell]), float(pp[cell]), float(g[cell])))
+    cands.sort(key=lambda c: -c[0])
+    out = []
+    for _, axis, cell, p, ppv, gv in cands[:top]:
+        f = next(x for x in model.factors if x.axis == axis)
+        given = {gname: spec.axis_levels(gname[5:] if gname.startswith("next.") else gname)[int(c)]
+                 for gname, c in zip(f.given, cell[:-1])}
+        out.append(MarginalEntry(axis=axis, cell=given, to=spec.axis_levels(axis)[int(cell[-1])], probability=p,
+                                 per_point=ppv, gradient=gv))
+    return out
+
+
+def d_transitions(beta: float, lam: np.ndarray, v: np.ndarray, pairs: Sequence[tuple[int, int]]) -> np.ndarray:
+    """dJ/dP_ij = beta lambda_i V_j for explicit (i, j) pairs."""
+    p = np.asarray(pairs, dtype=np.int64).reshape(-1, 2)
+    return beta * lam[p[:, 0]] * v[p[:, 1]]

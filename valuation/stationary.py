@@ -1,0 +1,80 @@
+"""Long-run state mix: the stationary distribution of the chain, members and non-members alike.
+
+pi solves pi P = pi, sum(pi) = 1. Fixed axes never change, so the chain splits into one block
+per fixed cell and pi is not unique; we take each block's own stationary distribution, weighted
+by a given share of the population per block. Within a block the chain is assumed unichain (one
+recurrent class; transient states such as never-members that, once joined, never return get
+mass 0): then the bordered system
+
+    (I - P^T) x + u (1_b^T x)_b = u,     u = block weight / block size on each block,
+
+is nonsingular and its solution is pi (each block's mass equals its weight; multiply by 1_b^T to
+see that 1_b^T x = w_b, which leaves (I - P^T) x = 0 on every block). Solved densely for small
+grids, else by GMRES on the structured operator. A block with several recurrent classes makes the
+system singular: the solve then fails or returns a non-distribution, reported as QueryError.
+"""
+
+from __future__ import annotations
+
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from stateworth.errors import QueryError
+from stateworth.solver.gmres import gmres
+
+DENSE_MAX = 2500
+
+
+@partial(jax.jit, static_argnames=("blocks", "tol", "max_iter"))
+def _bordered_gmres(op, u, blocks, tol, max_iter):
+    n = u.shape[0]
+
+    def matvec(x):
+        s = jnp.sum(x.reshape(blocks, -1), axis=1)
+        return x - op.transpose().mv(x) + u * jnp.repeat(s, n // blocks)
+
+    x, it, ap, res, st = gmres(matvec, u[:, None], u[:, None], tol=tol, restart=60, max_iter=max_iter)
+    return x[:, 0], res, st
+
+
+def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol: float = 1e-11,
+                            max_iter: int = 20000) -> np.ndarray:
+    """pi ``(n,)`` of the operator ``op`` (any object with ``mv``/``transpose`` and ``shape``).
+
+    ``block_weights`` ``(F,)``: the grid is F equal consecutive blocks (the fixed cells, which
+    lead the grid order) with these population shares (normalised); default one block."""
+    n = int(op.shape[0])
+    w = np.ones(1) if block_weights is None else np.asarray(block_weights, dtype=np.float64)
+    F = len(w)
+    if n % F:
+        raise QueryError(f"{F} blocks do not divide {n} states", field="fixed_weights")
+    if (w < 0).any() or not w.sum() > 0:
+        raise QueryError("fixed-cell weights must be non-negative and not all zero", field="fixed_weights")
+    w = w / w.sum()
+    u = np.repeat(w / (n // F), n // F)
+    if n <= DENSE_MAX:
+        P = np.asarray(op.mv(jnp.eye(n)))
+        B = np.zeros((n, n))
+        for b in range(F):
+            sl = slice(b * (n // F), (b + 1) * (n // F))
+            B[:, sl] = u[:, None]
+        A = np.eye(n) - P.T + B * (np.arange(n)[None, :] // (n // F) == np.arange(n)[:, None] // (n // F))
+        try:
+            x = np.linalg.solve(A, u)
+        except np.linalg.LinAlgError:
+            raise QueryError("the chain has more than one recurrent class within a fixed cell; its long-run "
+                             "mix depends on the starting state", field="stationary") from None
+        res = float(np.max(np.abs(A @ x - u)) / np.max(np.abs(u)))
+        ok = np.isfinite(res) and res < 1e-8
+    else:
+        x, res, st = _bordered_gmres(op, jnp.asarray(u), F, tol, max_iter)
+        x = np.asarray(x)
+        ok = int(st) == 0
+    if not ok or np.min(x) < -1e-8 or not np.all(np.isfinite(x)):
+        raise QueryError("the stationary distribution could not be determined (the chain may have more than one "
+                         "recurrent class within a fixed cell)", field="stationary")
+    x = np.clip(x, 0.0, None)
+    return x / x.sum()
