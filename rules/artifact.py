@@ -66,7 +66,8 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
             np.savez(fh, **arrays)
         for fname, doc in (files or {}).items():
             (tmp / fname).write_text(json.dumps(doc, indent=2, sort_keys=True, default=str))
-        (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2, sort_keys=True))
+        # not sort_keys: the order of the spec's axes is meaningful (grid order, draw order)
+        (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2))
         if path.exists():
             old = Path(tempfile.mkdtemp(prefix=f".{path.name}.old-", dir=path.parent))
             os.rename(path, old / "artifact")
