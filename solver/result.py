@@ -41,6 +41,8 @@ class Solution:
     transpose: bool = False
     horizon: int | None = None
     notes: list[str] = field(default_factory=list)
+    #: value iteration only: elementwise (lower, upper) McQueen-Porteus bracket on V, each (n, k)
+    bracket: tuple[np.ndarray, np.ndarray] | None = None
 
     def value(self, stream: str | int = 0) -> np.ndarray:
         """The ``(n,)`` value function of one stream (by name or column)."""

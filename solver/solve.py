@@ -120,6 +120,7 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
     rj = jnp.asarray(r)
     xj = jnp.zeros_like(rj) if x0 is None else jnp.asarray(np.asarray(x0, dtype=np.float64).reshape(n, k))
     bound = None
+    bracket = None
     if chosen == "dense":
         x, res_vec, status = solve_dense(A, rj, beta)
         x = np.asarray(x)
@@ -150,9 +151,11 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
         iterations, residual, status = int(iterations), float(residual), Status(int(status))
         applies = 2 * iterations + 1
         bound = float(np.max(np.asarray(half)))
+        bracket = (np.asarray(lower), np.asarray(upper))
     sol = Solution(values=x, streams=names, method=chosen, status=status, iterations=iterations,
                    operator_applies=applies, residual=residual, bound=bound,
-                   seconds=time.perf_counter() - t0, beta=beta, transpose=transpose, notes=notes)
+                   seconds=time.perf_counter() - t0, beta=beta, transpose=transpose, notes=notes,
+                   bracket=bracket)
     if raise_on_failure:
         sol.raise_for_status(tol)
     return sol

@@ -1,0 +1,152 @@
+"""``make bench``: the solve benchmark (and the other areas' benchmarks when present).
+
+For each reference size (bench/models.py) it solves to 1e-8 max-norm relative residual with
+stateworth and, in the same run, with scipy spsolve, scipy GMRES and BiCGStab on the explicit
+CSR matrix and numpy power iteration. Each solver runs in its own process (peak memory is its
+own). A reference is skipped, and said so, where its time extrapolated from the smaller sizes
+would exceed 5 minutes. It also measures memory bandwidth (a large numpy copy) and compares the
+operator apply with its bandwidth floor (bytes an apply must read and write / bandwidth).
+
+Writes bench/out/solve.json and prints a table. Options: --sizes 10k,100k --skip-others
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+OUT = HERE / "out"
+LIMIT_S = 300.0
+REFS = ["spsolve", "gmres", "bicgstab", "power"]
+# growth exponents used to extrapolate a reference's time to the next size (conservative)
+GROWTH = {"spsolve": 1.5, "gmres": 1.2, "bicgstab": 1.2, "power": 1.1, "build_csr": 1.0}
+
+
+def bandwidth_gbps() -> float:
+    a = np.ones(64 * 1024 * 1024 // 8 * 8)  # 512 MB
+    b = np.empty_like(a)
+    np.copyto(b, a)
+    best = math.inf
+    for _ in range(5):
+        t0 = time.perf_counter()
+        np.copyto(b, a)
+        best = min(best, time.perf_counter() - t0)
+    return 2 * a.nbytes / best / 1e9
+
+
+def run_one(size: str, solver: str, csr: str | None, timeout: float) -> dict:
+    cmd = [sys.executable, str(HERE / "solve_one.py"), "--size", size, "--solver", solver]
+    if csr:
+        cmd += ["--csr", csr]
+    try:
+        out = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, check=True)
+    except subprocess.TimeoutExpired:
+        return {"solver": solver, "skipped": f"timed out after {timeout:.0f} s"}
+    except subprocess.CalledProcessError as e:
+        return {"solver": solver, "skipped": f"failed: {e.stderr.strip().splitlines()[-1] if e.stderr else e}"}
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    import models
+
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--sizes", default=",".join(models.SIZES))
+    ap.add_argument("--skip-others", action="store_true", help="run only the solve benchmark")
+    args = ap.parse_args()
+    OUT.mkdir(parents=True, exist_ok=True)
+    sizes = args.sizes.split(",")
+    bw = bandwidth_gbps()
+    print(f"memory bandwidth (numpy copy, read + write): {bw:.2f} GB/s", flush=True)
+    rows: list[dict] = []
+    per_size: list[dict] = []
+    last: dict[str, tuple[int, float]] = {}
+    for size in sizes:
+        M, T, B = models.SIZES[size]
+        n = M * T * 5 * 5 * B
+        print(f"\n== {size}: {n:,} states ==", flush=True)
+        sw = run_one(size, "stateworth", None, 900)
+        rows.append(sw)
+        print(f"  stateworth       {sw.get('seconds', float('nan')):9.3f} s  residual {sw.get('rel_residual', float('nan')):.1e}  "
+              f"applies {sw.get('operator_applies')}  rss {sw.get('peak_rss_mb', 0):.0f} MB", flush=True)
+        csr = str(OUT / f"csr-{size}.npz")
+
+        def est(name: str) -> float:
+            if name not in last:
+                return 0.0
+            n0, t0 = last[name]
+            return t0 * (n / n0) ** GROWTH[name]
+
+        build_est = est("build_csr")
+        refs_possible = build_est <= LIMIT_S
+        if refs_possible and not Path(csr).exists():
+            b = run_one(size, "build_csr", csr, LIMIT_S * 2)
+            if "seconds" in b:
+                last["build_csr"] = (n, b["seconds"])
+                print(f"  (explicit CSR: {b['nnz']:,} non-zeros, built in {b['seconds']:.1f} s)", flush=True)
+            else:
+                refs_possible = False
+        for ref in REFS:
+            e = est(ref)
+            if not refs_possible or e > LIMIT_S:
+                why = (f"skipped: extrapolated {e:.0f} s from the previous size exceeds {LIMIT_S:.0f} s"
+                       if refs_possible else "skipped: explicit CSR export too large for this size")
+                rows.append({"states": n, "solver": ref, "skipped": why})
+                print(f"  {ref:<16} {why}", flush=True)
+                continue
+            row = run_one(size, ref, csr, LIMIT_S + 60)
+            row.setdefault("states", n)
+            rows.append(row)
+            if "seconds" in row:
+                last[ref] = (n, row["seconds"])
+                print(f"  {row['solver']:<16} {row['seconds']:9.3f} s  residual {row['rel_residual']:.1e}  "
+                      f"applies {row['operator_applies']}  rss {row['peak_rss_mb']:.0f} MB", flush=True)
+            else:
+                print(f"  {ref:<16} {row['skipped']}", flush=True)
+        refs_done = [r for r in rows if r.get("states") == n and r.get("solver", "").startswith(("scipy", "numpy"))
+                     and "seconds" in r]
+        fastest = min(refs_done, key=lambda r: r["seconds"]) if refs_done else None
+        info = {"states": n, "size": size, "bandwidth_gbps": bw,
+                "apply_seconds": sw.get("apply_seconds"),
+                "apply_floor_seconds": sw.get("apply_bytes", 0) / (bw * 1e9) if sw.get("apply_bytes") else None}
+        if fastest and "seconds" in sw:
+            info["fastest_reference"] = fastest["solver"]
+            info["speedup_vs_fastest_reference"] = fastest["seconds"] / sw["seconds"]
+        if info["apply_seconds"] and info["apply_floor_seconds"]:
+            info["apply_over_floor"] = info["apply_seconds"] / info["apply_floor_seconds"]
+        per_size.append(info)
+        print(f"  apply {info['apply_seconds'] * 1e3:.2f} ms vs floor {info['apply_floor_seconds'] * 1e3:.2f} ms "
+              f"({info.get('apply_over_floor', float('nan')):.1f}x)"
+              + (f"; {info['speedup_vs_fastest_reference']:.1f}x faster than {fastest['solver']}" if fastest else ""),
+              flush=True)
+    sw_rows = [r for r in rows if r.get("solver") == "stateworth" and "seconds" in r]
+    growth = {}
+    if len(sw_rows) >= 2:
+        a, b = sw_rows[0], sw_rows[-1]
+        growth = {"time_exponent": math.log(b["seconds"] / a["seconds"]) / math.log(b["states"] / a["states"]),
+                  "memory_exponent": math.log(b["peak_rss_mb"] / a["peak_rss_mb"]) / math.log(b["states"] / a["states"])}
+        print(f"\nstateworth growth from {a['states']:,} to {b['states']:,} states: time ~ n^{growth['time_exponent']:.2f}, "
+              f"peak memory ~ n^{growth['memory_exponent']:.2f}")
+    doc = rows + per_size + ([{"growth": growth}] if growth else [])
+    tmp = OUT / "solve.json.tmp"
+    tmp.write_text(json.dumps(doc, indent=2))
+    os.replace(tmp, OUT / "solve.json")
+    print(f"\nwrote {OUT / 'solve.json'}")
+    if not args.skip_others:
+        for extra in ("fit_bench.py", "valuation_bench.py", "serve_bench.py"):
+            if (HERE / extra).exists():
+                print(f"\n== {extra} ==", flush=True)
+                subprocess.run([sys.executable, str(HERE / extra)], check=False)
+
+
+if __name__ == "__main__":
+    main()
