@@ -8,7 +8,7 @@ draw too where a stream has one-off amounts on status moves (their expectation u
 All D systems are solved inside one jitted computation: ``lax.map`` over the draws (``batch``
 draws vectorised at a time), each a restarted GMRES on the draw's operator
 (``op.with_tables(tables_d)``), warm-started from the point model's values and right-
-preconditioned with the point model's two-level preconditioner when the solver provides one.
+preconditioned with the point model's two-level preconditioner.
 Sharing the start and the preconditioner is where the speed-up over D separate solves comes
 from: draws differ from the point model by sampling noise, so each needs only a few cycles.
 For small grids (``n <= DENSE_MAX``) each draw is a dense LU solve instead.
@@ -28,6 +28,7 @@ from stateworth.errors import ConvergenceError, QueryError
 from stateworth.rules.rewards import period_cash, transition_amounts
 from stateworth.solver.gmres import gmres
 from stateworth.solver.horizon import horizon_values
+from stateworth.solver.preconditioner import two_level
 
 #: grids up to this many states solve each draw densely
 DENSE_MAX = 800
@@ -93,14 +94,10 @@ def stacked_tables(model, draws: Mapping[str, np.ndarray] | None = None) -> tupl
 
 
 def point_preconditioner(model, transpose: bool = False):
-    """The solver's two-level preconditioner for the point model, or None if the solver has none.
+    """The solver's two-level preconditioner for the point model (None for dense-sized grids).
 
     Built once and shared by every draw: a draw's operator differs from the point model's by
     sampling noise, so the point model's coarse inverse still captures its slow modes."""
-    try:
-        from stateworth.solver.preconditioner import two_level
-    except ImportError:  # the solver may not ship one
-        return None
     if model.grid.size <= DENSE_MAX:
         return None
     return two_level(model, model.beta, transpose=transpose)
@@ -123,8 +120,10 @@ def _gmres_draws(op, pc, stacked, rhs, x0, beta, *, tol, restart, max_iter, batc
         def matvec(v):
             return v - beta * A.mv(v)
 
-        precond = (lambda v: pc.apply(A.mv, beta, v)) if has_pc else None
-        x, it, ap, res, st = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter, precond=precond)
+        if has_pc:
+            return gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter,
+                         precond=lambda v: pc.apply(A.mv, beta, v), precond_cost=pc.cost)
+        x, it, ap, res, st = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter)
         return x, it, ap, res, st
 
     return jax.lax.map(one, (stacked, rhs), batch_size=batch)

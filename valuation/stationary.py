@@ -6,10 +6,11 @@ by a given share of the population per block. Within a block the chain is assume
 recurrent class; transient states such as never-members that, once joined, never return get
 mass 0): then the bordered system
 
-    (I - P^T) x + u (1_b^T x)_b = u,     u = block weight / block size on each block,
+    (I - P^T) x + u (1_b^T x)_b = u,     u = 1 / block size on each block,
 
-is nonsingular and its solution is pi (each block's mass equals its weight; multiply by 1_b^T to
-see that 1_b^T x = w_b, which leaves (I - P^T) x = 0 on every block). Solved densely for small
+is nonsingular and its solution is each block's stationary distribution (sum the rows of a block:
+P is block-diagonal and stochastic, so 1_b^T x = 1, which leaves (I - P^T) x = 0 on every block);
+the blocks are then scaled by their weights. Solved densely for small
 grids, else by GMRES on the structured operator. A block with several recurrent classes makes the
 system singular: the solve then fails or returns a non-distribution, reported as QueryError.
 """
@@ -54,7 +55,7 @@ def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol:
     if (w < 0).any() or not w.sum() > 0:
         raise QueryError("fixed-cell weights must be non-negative and not all zero", field="fixed_weights")
     w = w / w.sum()
-    u = np.repeat(w / (n // F), n // F)
+    u = np.full(n, F / n)
     if n <= DENSE_MAX:
         P = np.asarray(op.mv(jnp.eye(n)))
         B = np.zeros((n, n))
@@ -76,5 +77,6 @@ def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol:
     if not ok or np.min(x) < -1e-8 or not np.all(np.isfinite(x)):
         raise QueryError("the stationary distribution could not be determined (the chain may have more than one "
                          "recurrent class within a fixed cell)", field="stationary")
-    x = np.clip(x, 0.0, None)
-    return x / x.sum()
+    x = np.clip(x, 0.0, None).reshape(F, -1)
+    x = x / np.maximum(x.sum(axis=1, keepdims=True), 1e-300) * w[:, None]
+    return x.reshape(-1)
