@@ -1,0 +1,177 @@
+"""Helpers shared by the query commands (value, compare, change, marginal, readout, report).
+
+Not a command itself (the leading underscore keeps the dispatcher from listing it). States are
+given on the command line as ``axis=level`` pairs; cohorts and table cells as ``axis=level,level``
+selections. Cohort weights are the model's long-run state mix restricted to the selection (or
+uniform over the selected states): a way to say "the members on solo in harbor, in the mix they
+are found in", without a panel at hand.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from typing import Any, Mapping, Sequence
+
+from stateworth.errors import QueryError
+
+CAUTION_LINE = ("Model-based estimates under the model's causal assumptions (moves unconfounded given the "
+                "state); not accounting figures; the discount rate and policy are finance's call.")
+
+
+def parse_pairs(pairs: Sequence[str], what: str = "state") -> dict[str, str]:
+    """``["market=harbor", "tenure=3"] -> {"market": "harbor", "tenure": "3"}``.
+
+    A bad pair raises QueryError naming it and the expected form."""
+    out: dict[str, str] = {}
+    for p in pairs:
+        if "=" not in p or p.startswith("=") or p.endswith("="):
+            raise QueryError(f"'{p}' is not of the form AXIS=LEVEL (e.g. status=prospect)", field=what)
+        k, v = p.split("=", 1)
+        k, v = k.strip(), v.strip()
+        if k in out and out[k] != v:
+            raise QueryError(f"axis '{k}' is given twice ({out[k]} and {v})", field=what)
+        out[k] = v
+    return out
+
+
+def parse_selection(items: Sequence[str] | None, what: str = "cohort") -> dict[str, list[str]]:
+    """``["status=solo,duo", "market=harbor"] -> {"status": ["solo", "duo"], "market": ["harbor"]}``."""
+    out: dict[str, list[str]] = {}
+    for item in items or []:
+        for part in item.split(";"):
+            part = part.strip()
+            if not part:
+                continue
+            if "=" not in part or part.endswith("="):
+                raise QueryError(f"'{part}' is not of the form AXIS=LEVEL[,LEVEL...] (e.g. status=solo,duo)",
+                                 field=what)
+            k, v = part.split("=", 1)
+            levels = [x.strip() for x in v.split(",") if x.strip()]
+            out.setdefault(k.strip(), []).extend(levels)
+    return out
+
+
+#: valuers already built in this process, by (path, modification time, draws): the demo and the
+#: tests ask many questions of one model; a one-shot command line call never hits it
+_VALUERS: dict[tuple, Any] = {}
+
+
+def load_valuer(path: str, *, draws: bool = True, quiet: bool = False):
+    """A :class:`~stateworth.valuation.Valuer` for a compiled model directory or a spec with
+    written tables (solved on load: every reward stream, and every posterior draw if any)."""
+    from pathlib import Path
+
+    from stateworth.clients.commands.solve import load_any
+    from stateworth.valuation import Valuer
+
+    p = Path(path)
+    stamp = p / "manifest.json" if p.is_dir() else p
+    key = (str(p.resolve()), stamp.stat().st_mtime_ns if stamp.exists() else None, bool(draws))
+    if key[1] is not None and key in _VALUERS:
+        return _VALUERS[key]
+    model = load_any(path)
+    if not quiet and sys.stderr.isatty():
+        print(f"solving {model.name} ({model.n_states:,} states, {len(model.rewards)} streams"
+              f"{', with posterior draws' if model.draws and draws else ''}) ...", file=sys.stderr)
+    valuer = Valuer.build(model, draws=draws)
+    if len(_VALUERS) >= 8:
+        _VALUERS.pop(next(iter(_VALUERS)))
+    _VALUERS[key] = valuer
+    return valuer
+
+
+def selection_mask(valuer, selection: Mapping[str, Sequence[str]], what: str = "cohort"):
+    """Boolean ``(n,)`` mask of the states whose level on each named axis is one of the given
+    levels. QueryError names an unknown axis or level."""
+    import numpy as np
+
+    grid = valuer.model.grid
+    codes = grid.codes()
+    mask = np.ones(grid.size, dtype=bool)
+    for axis, levels in selection.items():
+        if axis not in grid.names:
+            raise QueryError(f"unknown axis '{axis}' in --{what}; axes are {', '.join(grid.names)}", field=what)
+        idx = [grid.level_index(axis, lv) for lv in levels]
+        mask &= np.isin(codes[grid.position(axis)], idx)
+    return mask
+
+
+def cohort_weights(valuer, selection: Mapping[str, Sequence[str]], basis: str = "long-run",
+                   what: str = "cohort"):
+    """Cohort weights ``(n,)`` summing to 1: the long-run state mix (``valuer.stationary()``)
+    restricted to the selection, or ``basis="uniform"``: equal weight on each selected state.
+    QueryError when the selection holds no weight (e.g. a plan not sold where selected)."""
+    import numpy as np
+
+    mask = selection_mask(valuer, selection, what)
+    if basis == "uniform":
+        w = mask.astype(np.float64)
+    elif basis == "long-run":
+        pi = np.asarray(valuer.stationary(), dtype=np.float64)
+        # the long-run solve leaves round-off (~1e-17) on unreachable states: that is no weight
+        pi = np.where(pi > 1e-12 * float(pi.max()), pi, 0.0)
+        w = np.where(mask, pi, 0.0)
+    else:
+        raise QueryError(f"unknown weight basis '{basis}'; use long-run or uniform", field="basis")
+    total = float(w.sum())
+    if not total > 0.0:
+        sel = " ".join(f"{k}={','.join(v)}" for k, v in selection.items()) or "(everything)"
+        raise QueryError(f"the selection {sel} holds no {'states' if basis == 'uniform' else 'long-run weight'}; "
+                         "widen it (a plan not sold in a market, or a state never reached, has none)", field=what)
+    return w / total
+
+
+def add_model_argument(p: argparse.ArgumentParser) -> None:
+    p.add_argument("model", help="a compiled model directory (from `stateworth fit` or `solve --save`) "
+                                 "or a spec (.toml) with written tables")
+
+
+def add_stream_arguments(p: argparse.ArgumentParser, horizon: bool = True) -> None:
+    p.add_argument("--stream", default=None,
+                   help="reward stream to value (default: the spec's first stream; member_months counts "
+                        "discounted member periods)")
+    if horizon:
+        p.add_argument("--horizon", type=int, default=None,
+                       help="value of the next H periods only (default: the infinite horizon)")
+    p.add_argument("--level", type=float, default=0.9,
+                   help="interval level when the model carries posterior draws (default 0.9)")
+    p.add_argument("--json", action="store_true", help="print the answer as JSON (for scripts)")
+
+
+def add_cohort_arguments(p: argparse.ArgumentParser, required: bool = False) -> None:
+    p.add_argument("--cohort", action="append", metavar="AXIS=LEVEL[,LEVEL]", required=required,
+                   help="select the cohort's states (repeatable; e.g. --cohort status=solo,duo "
+                        "--cohort market=harbor); default: every state")
+    p.add_argument("--basis", choices=["long-run", "uniform"], default="long-run",
+                   help="weights within the cohort: the model's long-run state mix (default) or uniform")
+
+
+def default_stream(valuer, stream: str | None) -> str:
+    if stream is None:
+        return valuer.streams[0]
+    if stream not in valuer.streams:
+        raise QueryError(f"unknown reward stream '{stream}'; streams are {', '.join(valuer.streams)}",
+                         field="stream")
+    return stream
+
+
+def check_level(level: float) -> float:
+    if not (0.0 < level < 1.0):
+        raise QueryError(f"--level must lie strictly between 0 and 1, e.g. 0.9 (got {level})", field="level")
+    return level
+
+
+def describe_state(coords: Mapping[str, Any]) -> str:
+    return " ".join(f"{k}={v}" for k, v in coords.items())
+
+
+def print_json(doc: Any) -> None:
+    print(json.dumps(doc, indent=2, sort_keys=False, default=float))
+
+
+def header(valuer, stream: str, horizon: int | None = None) -> str:
+    hz = f", next {horizon} {valuer.model.spec.model.period}s" if horizon else ""
+    return (f"model {valuer.model.name} version {valuer.version}, stream {stream} "
+            f"({valuer.unit(stream)}{hz})")

@@ -1,0 +1,52 @@
+"""``stateworth marginal MODEL``: every transition's marginal value, ranked (one adjoint solve)."""
+
+from __future__ import annotations
+
+import argparse
+
+from stateworth.clients.commands import _common as c
+
+NAME = "marginal"
+HELP = "rank the factor-table entries by the value of +1 point of probability (one adjoint solve)"
+DESCRIPTION = """Marginal values of transitions for J = mu . V, the value of a cohort (weights mu; default
+every state in the long-run mix). One adjoint solve (I - beta P^T) lambda = mu prices every
+transition at once: dJ/dP_ij = beta lambda_i V_j. Each factor-table entry is ranked by what +1
+percentage point on it is worth, the other allowed entries of its row scaled down in proportion.
+Marginal figures are local: use `stateworth change` for the exact effect of a finite change.
+
+example:
+  stateworth marginal demo-out/model --top 10
+  stateworth marginal demo-out/model --cohort status=solo,duo,studio --stream margin --json
+"""
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    c.add_model_argument(p)
+    p.add_argument("--top", type=int, default=15, help="how many entries to list (default 15)")
+    c.add_cohort_arguments(p)
+    c.add_stream_arguments(p, horizon=False)
+
+
+def run(args: argparse.Namespace) -> int:
+    from stateworth.clients.tables import money, print_table
+    from stateworth.errors import QueryError
+
+    if args.top < 1:
+        raise QueryError(f"--top must be at least 1 (got {args.top})", field="top")
+    valuer = c.load_valuer(args.model, draws=False, quiet=args.json)
+    stream = c.default_stream(valuer, args.stream)
+    selection = c.parse_selection(args.cohort)
+    weights = c.cohort_weights(valuer, selection, args.basis)
+    res = valuer.marginal(weights, stream=stream, top=args.top)
+    if args.json:
+        c.print_json(res.to_dict())
+        return 0
+    print(c.header(valuer, stream))
+    print(f"cohort: {c.describe_state({k: ','.join(v) for k, v in selection.items()}) or 'every state'} "
+          f"({args.basis} weights); cohort value J = {money(res.objective)} {res.unit} per customer")
+    rows = [[i + 1, f"P({e.axis}'={e.to} | {c.describe_state(e.cell)})", f"{e.probability:.4f}",
+             money(e.per_point)] for i, e in enumerate(res.entries)]
+    print_table(["rank", "transition", "probability", f"per +1 point ({res.unit})"], rows)
+    print("per +1 point: change of J when that probability rises by 0.01 in every state of the cell.")
+    print(c.CAUTION_LINE)
+    return 0
