@@ -259,6 +259,16 @@ def test_transition_change_exact(tiny, tv):
     json.dumps(res.to_dict(states=True))
 
 
+def test_transition_change_in_one_market_resolves_its_block_only(tiny, tv):
+    ch = TransitionChange("status", "duo", 0.02, {"market": "harbor", "status": "solo"})
+    res = tv.transition_change(ch)
+    assert res.stats["states_resolved"] == tiny.n_states // 2
+    ref = exact_values(tiny.with_tables({"status": apply_change(tiny, ch)})) - exact_values(tiny)
+    np.testing.assert_allclose(res.delta, ref, atol=1e-8)
+    upland = tiny.grid.codes()[0] == 1
+    assert np.all(res.delta[upland] == 0.0) and np.abs(res.delta[~upland]).max() > 1
+
+
 def test_transition_change_with_intervals(tiny_draws):
     v = tiny_draws
     ch = TransitionChange("status", "lapsed", -0.01, {"status": "solo"})
@@ -269,6 +279,17 @@ def test_transition_change_with_intervals(tiny_draws):
     lo, hi = res.interval
     assert lo < res.weighted < hi and lo > 0
     assert res.state_interval[0].shape == (v.model.n_states,)
+    # restricted to one market: the draws are cut to that block too, and agree with the full path
+    one = v.transition_change(TransitionChange("status", "lapsed", -0.01, {"status": "solo", "market": "harbor"}),
+                              weights=w, level=0.8)
+    assert one.stats["states_resolved"] == v.model.n_states // 2
+    both = v.transition_change(TransitionChange("status", "lapsed", -0.01, {"status": "solo",
+                                                                            "market": ["harbor", "upland"]}),
+                               weights=w, level=0.8)
+    assert both.stats["states_resolved"] == v.model.n_states
+    # w sits in harbor: the upland part of the change cannot move it
+    assert one.weighted == pytest.approx(both.weighted, rel=1e-9)
+    assert one.interval == pytest.approx(both.interval, rel=1e-8)
 
 
 # ---------------------------------------------------------------- marginal values

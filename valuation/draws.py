@@ -61,6 +61,11 @@ def reward_parts(model, stream: str) -> RewardParts:
     return RewardParts(base=c if start else beta * c, cols=cols, masks=masks, scale=beta)
 
 
+def slice_parts(parts: RewardParts, states: np.ndarray) -> RewardParts:
+    """The reward parts restricted to ``states`` (for a block sub-model)."""
+    return RewardParts(base=parts.base[states], cols=parts.cols[states], masks=parts.masks[states], scale=parts.scale)
+
+
 def rewards_on(op, parts: Sequence[RewardParts]) -> jax.Array:
     """``(n, k)`` rewards of the streams ``parts`` under operator ``op`` (traceable)."""
     out = []
@@ -161,10 +166,15 @@ def _rhs_draws(op, stacked, parts_arrays):
     return jax.lax.map(one, stacked)
 
 
-def draw_rewards(model, stacked: Mapping[str, np.ndarray], streams: Sequence[str]) -> jax.Array:
-    parts = [reward_parts(model, s) for s in streams]
+def rewards_for_draws(op, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts]) -> jax.Array:
+    """Rewards ``(D, n, k)`` of the streams ``parts`` under each draw's operator."""
     arrays = tuple((jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale) for p in parts)
-    return _rhs_draws(model.operator, {k: jnp.asarray(v) for k, v in stacked.items()}, arrays)
+    return _rhs_draws(op, {k: jnp.asarray(v) for k, v in stacked.items()}, arrays)
+
+
+def draw_rewards(model, stacked: Mapping[str, np.ndarray], streams: Sequence[str]) -> jax.Array:
+    """Rewards ``(D, n, k)`` of the model's ``streams`` under each draw."""
+    return rewards_for_draws(model.operator, stacked, [reward_parts(model, s) for s in streams])
 
 
 def solve_draws(model, stacked: Mapping[str, np.ndarray], rhs: np.ndarray | jax.Array, x0: np.ndarray, *,
