@@ -252,10 +252,27 @@ def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | 
     data["plan_upgrade"] = upg
     step()
 
-    # ranked marginal transition values for the long-run population
-    mres = valuer.marginal(pi, stream=stream, top=top)
-    data["marginal"] = {"objective": float(mres.objective),
-                        "entries": [e.to_dict() for e in mres.entries]}
+    # ranked marginal transition values for the long-run population. One entry per calendar
+    # cell would fill the ranking with the same move twelve times, so entries that differ only
+    # in cycle axes are pooled: raising the probability in every one of those cells at once is
+    # worth, to first order, the sum of their per-point values.
+    mres = valuer.marginal(pi, stream=stream, top=10**9)
+    cycles = {ax.name for ax in grid.axes if ax.kind == "cycle"}
+    pooled: dict[tuple, dict[str, Any]] = {}
+    for e in mres.entries:
+        cell = {k: v for k, v in e.cell.items() if k not in cycles}
+        key = (e.axis, tuple(sorted(cell.items())), e.to)
+        g = pooled.setdefault(key, {"axis": e.axis, "cell": cell, "to": e.to, "per_point": 0.0, "probs": [],
+                                    "cells": 0})
+        g["per_point"] += e.per_point
+        g["probs"].append(e.probability)
+        g["cells"] += 1
+    ranked = sorted(pooled.values(), key=lambda g: -abs(g["per_point"]))[:top]
+    data["marginal"] = {"objective": float(mres.objective), "pooled_over": sorted(cycles),
+                        "entries": [{"axis": g["axis"], "cell": g["cell"], "to": g["to"],
+                                     "probability": float(np.mean(g["probs"])),
+                                     "probability_range": [float(min(g["probs"])), float(max(g["probs"]))],
+                                     "cells": g["cells"], "per_point": float(g["per_point"])} for g in ranked]}
     step()
     bar.close()
 
@@ -417,12 +434,14 @@ def chart_marginal(data: Mapping[str, Any]) -> bytes | None:
     plt = _plt()
     labels = [entry_label(e) for e in entries][::-1]
     vals = [e["per_point"] for e in entries][::-1]
-    fig, ax = plt.subplots(figsize=(10.5, 0.42 * len(entries) + 1.6))
+    fig, ax = plt.subplots(figsize=(10.5, 0.42 * len(entries) + 1.8))
     ax.barh(np.arange(len(vals)), vals, color=["C2" if v >= 0 else "C3" for v in vals])
     ax.set_yticks(np.arange(len(vals)), labels, fontsize=9)
     ax.axvline(0, color="0.2", lw=0.8)
     ax.set_xlabel(f"change of the population's value per customer, per +1 point ({data['unit']})")
-    ax.set_title("Marginal value of transitions: +1 percentage point on one table entry")
+    pooled = data["marginal"].get("pooled_over") or []
+    fig.suptitle("Marginal value of transitions: +1 percentage point on one table entry"
+                 + (f"\n(in every {', '.join(pooled)} at once)" if pooled else ""), fontsize=13)
     fig.tight_layout()
     return _png(fig)
 
@@ -465,6 +484,11 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]], numeric: Seque
             for c, n in zip(r, numeric)) + "</tr>")
     out.append("</tbody></table>")
     return "\n".join(out)
+
+
+def _prob(x: Mapping[str, Any]) -> str:
+    lo, hi = x.get("probability_range") or (x["probability"], x["probability"])
+    return f"{lo:.4f}" if abs(hi - lo) < 5e-5 else f"{lo:.4f} to {hi:.4f}"
 
 
 def _iv(iv: Sequence[float] | None) -> str:
@@ -524,8 +548,11 @@ def render_html(data: Mapping[str, Any], charts: Mapping[str, bytes | None]) -> 
     cyc = ", ".join(data["acquisition"]["cycles"])
     rows_upg = [[r["market"], f"{r['from']} -> {r['to']}", r["value"], _iv(r["interval"])]
                 for r in data["plan_upgrade"]]
-    rows_mg = [[i + 1, entry_label(x), f"{x['probability']:.4f}", x["per_point"]]
+    rows_mg = [[i + 1, entry_label(x), _prob(x), x.get("cells", 1), x["per_point"]]
                for i, x in enumerate(data["marginal"]["entries"])]
+    pooled = data["marginal"].get("pooled_over") or []
+    pooled_note = (f" Entries that differ only in {', '.join(pooled)} are pooled: the row is the value of +1 point "
+                   f"in all of those cells at once (the sum of their per-point values)." if pooled else "")
     s = data["solve"]
     rows_solve = [[k.replace("_", " "), _scalar(s.get(k))] for k in
                   ("method", "status", "iterations", "operator_applies", "residual", "bound", "seconds",
@@ -575,10 +602,11 @@ long-run mix in each market. Pricing systems use this figure to bound an upgrade
 <p>For J = the value of the long-run population per customer ({_fmt(data['marginal']['objective'])} {e(unit)}),
 one adjoint solve prices every transition: dJ/dP<sub>ij</sub> = &beta; &lambda;<sub>i</sub> V<sub>j</sub>.
 Each row is what +1 percentage point on one factor-table entry is worth (the other allowed entries
-of its row scaled down in proportion). These are local slopes: use <code>stateworth change</code>
-for the exact effect of a finite change.</p>
+of its row scaled down in proportion).{e(pooled_note)} These are local slopes: use
+<code>stateworth change</code> for the exact effect of a finite change.</p>
 {_img('marginal', charts.get('marginal'), 'marginal values')}
-{_table(['rank', 'transition', 'probability', f'per +1 point ({unit})'], rows_mg, [True, False, True, True])}
+{_table(['rank', 'transition', 'probability', 'cells', f'per +1 point ({unit})'], rows_mg,
+        [True, False, True, True, True])}
 
 <h2>Fit diagnostics</h2>
 <p>Overlap (every conditioning cell shows moves into member and non-member next status), balance
