@@ -62,7 +62,7 @@ def persistence(model, axis: str) -> float:
     return float(np.max(t, axis=-1).mean())
 
 
-def choose_key(model, max_block: int = MAX_BLOCK, counter_bins: int = 6) -> dict[str, int]:
+def choose_key(model, max_block: int = MAX_BLOCK, counter_bins: int = 1) -> dict[str, int]:
     """Coarse levels per axis: the status axis whole, then chance axes by persistence, then
     counters in up to ``counter_bins`` equal bins (values vary smoothly along them), each while
     the block stays under ``max_block``. Chance axes come before counters because measured
@@ -216,7 +216,7 @@ class TwoLevel:
 
 
 def two_level(model, beta: float, *, transpose: bool = False, smooth: int = 4,
-              max_block: int = MAX_BLOCK, counter_bins: int = 6, tables: dict | None = None) -> TwoLevel:
+              max_block: int = MAX_BLOCK, counter_bins: int = 1, tables: dict | None = None) -> TwoLevel:
     """Build the preconditioner for ``I - beta P`` (or ``I - beta P^T`` with ``transpose``)."""
     key = choose_key(model, max_block, counter_bins)
     C = coarse_matrix(model, key, tables)

@@ -75,14 +75,16 @@ def _resolve_inputs(model, rewards, beta):
 def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto", tol: float = 1e-10,
           x0: np.ndarray | None = None, transpose: bool = False, horizon: int | None = None,
           max_iter: int | None = None, restart: int = 40, raise_on_failure: bool = True,
-          stochastic: bool = True, preconditioner: str = "auto") -> Solution:
+          stochastic: bool = True, preconditioner: str = "auto", devices: int | None = None) -> Solution:
     """Solve the discounted Bellman (policy-evaluation) equation.
 
     ``model``: a :class:`~stateworth.rules.CompiledModel` or any operator with ``mv``/``transpose``.
     ``rewards``: stream name(s) of the model (default all), or an array ``(n,)`` / ``(n, k)`` in
     money per period. Returns a :class:`Solution` whose ``values`` are ``(n, k)`` in money (the
     discounted sum of the stream from each state). ``stochastic=False`` declares that rows of P
-    may sum to less than 1 (needed for the value-iteration bracket to stay valid)."""
+    may sum to less than 1 (needed for the value-iteration bracket to stay valid).
+    ``devices=N`` shards the grid along its first fixed axis over N local devices
+    (:mod:`stateworth.solver.sharding`); the answer is the same to rounding."""
     t0 = time.perf_counter()
     if method not in METHODS:
         raise QueryError(f"unknown method '{method}'; choose one of {', '.join(METHODS)}", field="method")
@@ -94,14 +96,35 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
         raise QueryError(f"beta must lie in (0, 1] (got {beta})", field="beta")
     if not np.all(np.isfinite(r)):
         raise QueryError("rewards contain NaN or infinite values", field="rewards")
-    A = op.transpose() if transpose else op
     notes: list[str] = []
+    shard = None
+    n_orig = n
+    if devices is not None:
+        from stateworth.rules.compiled import CompiledModel
+        from stateworth.solver import sharding
+        if not isinstance(model, CompiledModel):
+            raise QueryError("devices needs a compiled model (its fixed axes say how to shard)", field="devices")
+        if method == "dense":
+            raise QueryError("the dense method runs on one device; use method='gmres' with devices", field="devices")
+        shard = sharding.shard_model(model, int(devices))
+        notes.append(shard.note)
+        model = shard.model
+        op = sharding.put_operator(shard, model.operator)
+        r = shard.pad_vector(r)
+        if x0 is not None:
+            x0 = shard.pad_vector(np.asarray(x0, dtype=np.float64).reshape(n_orig, k))
+        n = r.shape[0]
+    A = op.transpose() if transpose else op
+
+    def place(a):
+        a = jnp.asarray(a)
+        return a if shard is None else sharding.put_sharded(shard, a)
 
     if horizon is not None:
         if int(horizon) < 0:
             raise QueryError(f"horizon must be a non-negative number of periods (got {horizon})", field="horizon")
-        v = _horizon_jit(A, jnp.asarray(r), beta, int(horizon))
-        v = np.asarray(v)
+        v = _horizon_jit(A, place(r), beta, int(horizon))
+        v = np.asarray(v)[:n_orig]
         return Solution(values=v, streams=names, method="horizon", status=Status.CONVERGED,
                         iterations=int(horizon), operator_applies=int(horizon), residual=0.0, bound=0.0,
                         seconds=time.perf_counter() - t0, beta=beta, transpose=transpose,
@@ -109,7 +132,7 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
 
     chosen = method
     if method == "auto":
-        chosen = "dense" if n <= DENSE_MAX else "gmres"
+        chosen = "dense" if n <= DENSE_MAX and shard is None else "gmres"
         notes.append(f"auto picked {chosen} for {n:,} states")
     need = memory_needed(n, k, chosen, restart)
     limit = config.memory_limit_bytes()
@@ -117,8 +140,8 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
         raise GridTooLargeError(f"a {chosen} solve of {n:,} states x {k} right-hand sides needs about "
                                 f"{need / 1024**3:.1f} GB, over the limit of {limit / 1024**3:.1f} GB; use "
                                 "method='gmres' or raise STATEWORTH_MEMORY_LIMIT_GB")
-    rj = jnp.asarray(r)
-    xj = jnp.zeros_like(rj) if x0 is None else jnp.asarray(np.asarray(x0, dtype=np.float64).reshape(n, k))
+    rj = place(r)
+    xj = place(np.zeros_like(r) if x0 is None else np.asarray(x0, dtype=np.float64).reshape(n, k))
     bound = None
     bracket = None
     if chosen == "dense":
@@ -137,6 +160,8 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
         from stateworth.rules.compiled import CompiledModel
         if preconditioner != "none" and isinstance(model, CompiledModel):
             pc = two_level(model, beta, transpose=transpose)
+            if shard is not None:
+                pc = sharding.put_preconditioner(shard, pc)
             notes.append(f"two-level preconditioner: coarse blocks {pc.inv.shape[0]} x {pc.coarse.block}")
         elif preconditioner == "two_level":
             raise QueryError("the two-level preconditioner needs a compiled model, not a bare operator",
@@ -152,6 +177,10 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
         applies = 2 * iterations + 1
         bound = float(np.max(np.asarray(half)))
         bracket = (np.asarray(lower), np.asarray(upper))
+    if shard is not None:
+        x = x[:n_orig]
+        if bracket is not None:
+            bracket = (bracket[0][:n_orig], bracket[1][:n_orig])
     sol = Solution(values=x, streams=names, method=chosen, status=status, iterations=iterations,
                    operator_applies=applies, residual=residual, bound=bound,
                    seconds=time.perf_counter() - t0, beta=beta, transpose=transpose, notes=notes,

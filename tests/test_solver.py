@@ -31,7 +31,8 @@ def random_model(seed: int, markets: int = 2, tenure: int = 4, bands: int = 3):
                        "not_sold": {"p2": ["m0"]}},
             "band": {"kind": "chance", "levels": [f"b{i}" for i in range(bands)], "given": ["next.status", "band"]},
         },
-        "rewards": {"rev": {"price": {"p1": 10.0, "p2": {"m1": 25.0}}, "on_join": -4.0, "fees_share": 0.1}},
+        "rewards": {"rev": {"price": {"p1": 10.0, "p2": {f"m{i}": 20.0 + i for i in range(1, markets)}},
+                            "on_join": -4.0, "fees_share": 0.1}},
     })
     tables = {}
     for f in factors_of(spec):
