@@ -64,6 +64,15 @@ class TableRow(_Strict):
     probs: dict[str, float]
 
 
+class Propensity(_Strict):
+    """A propensity band: the axis's levels are quantile bands of a logistic score of being a
+    member, fitted on the panel's numeric ``covariates`` (columns of the panel). The band of a
+    panel row is derived from its covariates when fitting; the axis is then an ordinary chance
+    axis whose kernel is estimated like any other."""
+
+    covariates: list[str]
+
+
 class Axis(_Strict):
     kind: Literal["status", "fixed", "counter", "cycle", "chance"]
     levels: list[str] | None = None
@@ -76,6 +85,8 @@ class Axis(_Strict):
     given: list[str] | None = None
     moves: dict[str, list[str]] = Field(default_factory=dict)
     table: list[TableRow] | None = None
+    # chance: the levels are propensity bands derived from covariates (see Propensity)
+    propensity: Propensity | None = None
     # counter
     advance_while: str | list[str] | None = None
     reset_on: list[str] | None = None
@@ -287,6 +298,8 @@ def check_spec(spec: Spec) -> list[str]:
                 wrong.append("moves")
             if ax.table is not None:
                 wrong.append("table")
+        if ax.kind != "chance" and ax.propensity is not None:
+            wrong.append("propensity")
         if ax.kind != "counter":
             if ax.advance_while is not None:
                 wrong.append("advance_while")
@@ -366,6 +379,22 @@ def check_spec(spec: Spec) -> list[str]:
                     total += pr if math.isfinite(pr) else 0.0
                 if abs(total - 1.0) > ROW_SUM_TOLERANCE:
                     p.append(f"{rw}.probs: sums to {total:.12g}; a row must sum to 1 within {ROW_SUM_TOLERANCE:g}")
+
+    bands = [n for n, a in spec.axes.items() if a.kind == "chance" and a.propensity is not None]
+    if len(bands) > 1:
+        p.append(f"axes.{bands[1]}.propensity: only one propensity band axis is allowed ({_fmt(bands)})")
+    for name in bands:
+        cov = spec.axes[name].propensity.covariates
+        where = f"axes.{name}.propensity.covariates"
+        if not cov:
+            p.append(f"{where}: list at least one numeric panel column, e.g. covariates = [\"age\"]")
+        if len(set(cov)) != len(cov):
+            p.append(f"{where}: a covariate is listed twice")
+        for c in cov:
+            if c in spec.axes or c in ("account", "period", "revenue"):
+                p.append(f"{where}: '{c}' is an axis or reserved panel column; name a covariate column")
+        if len(levels.get(name, [])) < 2:
+            p.append(f"axes.{name}.levels: a propensity band axis needs at least 2 bands")
 
     for plan, rule in st_ax.not_sold.items():
         where = f"axes.{st}.not_sold.{plan}"

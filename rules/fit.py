@@ -1,0 +1,383 @@
+"""Fit a spec's factor tables from an account panel: panel -> counts -> tables -> compiled model.
+
+Steps: read and validate the panel and the market-size table (:mod:`.panel`); fit the
+propensity score and cut its bands (:mod:`.propensity`) when the spec declares a band axis;
+count moves with one GROUP BY (:mod:`.counts`); check the counts against the move rules; turn
+counts into posterior-mean tables with draws (:mod:`.estimate`), the never-member rows of the
+status factor coming from the join hazard (:mod:`.joins`); compile. Nothing is written here;
+:func:`fit_to_dir` writes the artifact atomically once everything has succeeded.
+
+Conventions for cells the panel cannot show:
+
+* status factor, current status = never-member: from the join hazard per market (and cycle);
+* chance factors at status / next status = never-member: never-members are not in the panel,
+  so they borrow the moves of the former-member levels (a never-member's engagement moves like
+  a former member's).
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+
+from stateworth.errors import PanelError
+from stateworth.rules.compiled import CompiledModel, compile_model
+from stateworth.rules.counts import (JointCounts, count_duckdb, factor_counts, first_rows_sql, transitions_sql)
+from stateworth.rules.diagnostics import overlap_report, prior_report, summary_text
+from stateworth.rules.estimate import FactorFit, allowed_mask, posterior
+from stateworth.rules.factors import Factor, factors_of, move_mask
+from stateworth.rules.joins import first_row_table, hazard_summary, join_counts, prospect_rows
+from stateworth.rules.panel import CODED, Panel, load_markets, load_panel, period_label
+from stateworth.rules.propensity import SMD_BALANCED, band_cuts, band_of, band_sql, fit_logit, smd_by_band
+from stateworth.rules.spec import Spec
+
+#: Rows used for the logistic fit at most (every k-th panel row beyond that).
+LOGIT_MAX_ROWS = 1_000_000
+ENGINES = ("duckdb",)
+
+
+@dataclass(frozen=True)
+class FitOptions:
+    """``strength``: prior strength alpha (pseudo-moves) or ``"auto"`` (empirical Bayes per
+    factor); ``forbidden``: a move the rules forbid is an ``"error"`` or is ``"drop"``-ped with a
+    count; ``gaps``: a gap in an account's history is an ``"error"`` or a ``"non_member"``
+    period; ``draws``: posterior draws of every table (0 = none); ``seed`` for the draws."""
+
+    strength: float | Literal["auto"] = "auto"
+    forbidden: Literal["error", "drop"] = "error"
+    gaps: Literal["error", "non_member"] = "error"
+    draws: int = 100
+    seed: int = 0
+    engine: Literal["duckdb"] = "duckdb"
+    threads: int | None = None
+
+
+@dataclass
+class FitResult:
+    model: CompiledModel
+    diagnostics: dict
+    fits: dict[str, FactorFit]
+    joint: JointCounts
+    extra: dict[str, np.ndarray] = field(default_factory=dict)
+
+
+def _progress(enabled: bool, total: int):
+    from tqdm import tqdm
+
+    return tqdm(total=total, disable=not enabled, unit="step", desc="fit", leave=False)
+
+
+def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, options: FitOptions = FitOptions(),
+              *, source: str = "<spec>", progress: bool = False) -> FitResult:
+    """Fit every factor of ``spec`` from the panel and the market-size table (see module doc)."""
+    if options.engine not in ENGINES:
+        raise PanelError(f"unknown engine '{options.engine}'; use one of {', '.join(ENGINES)}", where="--engine")
+    if options.forbidden not in ("error", "drop"):
+        raise PanelError(f"forbidden = '{options.forbidden}'; use error or drop", where="forbidden")
+    if options.strength != "auto" and not (isinstance(options.strength, (int, float)) and options.strength > 0):
+        raise PanelError(f"prior strength {options.strength!r}: give a number > 0 or auto", where="--strength")
+    from stateworth.rules.panel import connect
+
+    bar = _progress(progress, 6)
+    con = connect(options.threads)
+    bar.set_description("fit: read panel")
+    panel = load_panel(spec, str(panel_path), gaps=options.gaps, con=con)
+    bar.update()
+    bar.set_description("fit: market sizes")
+    sizes = load_markets(spec, str(markets_path), panel)
+    bar.update()
+    lay = panel.layout
+    source_rel = CODED
+    diag_prop = None
+    band_expr = None
+    if lay.band:
+        bar.set_description("fit: propensity")
+        band_expr, diag_prop = _propensity(spec, panel)
+        con.execute(f"CREATE OR REPLACE TEMP VIEW banded AS SELECT *, {band_expr} AS {lay.col(lay.band)} FROM {CODED}")
+        source_rel = "banded"
+    bar.update()
+    bar.set_description("fit: count moves")
+    joint = count_duckdb(spec, con, source_rel)
+    first_rows = con.execute(first_rows_sql(spec, source_rel)).fetchall()
+    bar.update()
+    bar.set_description("fit: tables")
+    joint, dropped = _check_moves(spec, panel, joint, source_rel, options.forbidden)
+    first = first_row_table(panel, first_rows)
+    first, dropped_j = _check_joins(spec, panel, first, options.forbidden)
+    rng = np.random.default_rng(options.seed)
+    factors = factors_of(spec)
+    fits: dict[str, FactorFit] = {}
+    extra: dict[str, np.ndarray] = {}
+    skips: dict[str, np.ndarray] = {}
+    jdiag = {}
+    for f in factors:
+        C = factor_counts(spec, joint, f)
+        if f.axis == spec.status_axis:
+            fit, skip, jdiag, ext = _status_factor(spec, panel, f, C, first, sizes, options, rng)
+            extra.update(ext)
+        else:
+            C = _borrow_never_member(spec, f, C)
+            fit = posterior(C, allowed_mask(spec, f), options.strength, options.draws, rng, axis=f.axis)
+            skip = None
+        fits[f.axis] = fit
+        skips[f.axis] = skip
+    bar.update()
+    bar.set_description("fit: compile")
+    tables = {a: ft.table for a, ft in fits.items()}
+    draws = {a: ft.draws for a, ft in fits.items() if ft.draws is not None}
+    metadata = {"fitted_from": {"panel": os.path.basename(str(panel_path)), "markets": os.path.basename(str(markets_path)),
+                                "rows": panel.rows, "accounts": panel.accounts,
+                                "periods": [period_label(panel.p_min), period_label(panel.p_max)]},
+                "fit_options": {"strength": options.strength, "forbidden": options.forbidden, "gaps": options.gaps,
+                                "draws": options.draws, "seed": options.seed}}
+    if diag_prop:
+        metadata["propensity"] = {k: diag_prop[k] for k in ("axis", "covariates", "coef", "cuts")}
+    model = compile_model(spec, tables, source=source, metadata=metadata, draws=draws)
+    bar.update()
+    bar.close()
+    st_f = next(f for f in factors if f.axis == spec.status_axis)
+    diag = {
+        "model": spec.model.name, "version": model.version,
+        "panel": {"rows": panel.rows, "accounts": panel.accounts, "first_period": period_label(panel.p_min),
+                  "last_period": period_label(panel.p_max), "moves": joint.total, "gap_rows_filled": panel.filled},
+        "forbidden_dropped": dropped + dropped_j,
+        "prior": [prior_report(spec, f, fits[f.axis], skips[f.axis]) for f in factors],
+        "overlap": overlap_report(spec, st_f, fits[spec.status_axis], skips[spec.status_axis]),
+        "joins": jdiag,
+        "propensity": diag_prop,
+        "revenue": _revenue(spec, panel) if panel.has_revenue else None,
+        "caution": "Model-based estimates under stated causal assumptions; not accounting figures.",
+    }
+    return FitResult(model=model, diagnostics=diag, fits=fits, joint=joint, extra=extra)
+
+
+def fit_to_dir(spec: Spec, panel_path, markets_path, out_dir, options: FitOptions = FitOptions(), *,
+               source: str = "<spec>", progress: bool = False) -> FitResult:
+    """:func:`fit_panel`, then write the artifact (``diagnostics.json`` inside, and a readable
+    ``diagnostics.txt``) to ``out_dir``. Nothing is written if fitting fails."""
+    from stateworth.rules.artifact import save_model
+
+    res = fit_panel(spec, panel_path, markets_path, options, source=source, progress=progress)
+    save_model(res.model, out_dir, extra=res.extra, files={"diagnostics.json": res.diagnostics})
+    out = Path(out_dir)
+    fd, tmp = tempfile.mkstemp(prefix=".diagnostics.txt.tmp-", dir=out)
+    with os.fdopen(fd, "w") as fh:
+        fh.write(summary_text(res.diagnostics) + "\n")
+    os.replace(tmp, out / "diagnostics.txt")
+    return res
+
+
+# ---------------------------------------------------------------------------------------------
+
+
+def _propensity(spec: Spec, panel: Panel) -> tuple[str, dict]:
+    lay = panel.layout
+    con = panel.con
+    cols = [lay.cov_col(i) for i in range(len(lay.covariates))]
+    mem = [lay.code(lay.status, m) for m in spec.members]
+    n = con.execute(f"SELECT count(*) FROM {CODED} WHERE {cols[0]} IS NOT NULL").fetchone()[0]
+    k = max(1, -(-n // LOGIT_MAX_ROWS))
+    sample = con.execute(f"SELECT {', '.join(cols)}, CASE WHEN {lay.col(lay.status)} IN ({', '.join(map(str, mem))}) "
+                         f"THEN 1 ELSE 0 END AS y FROM {CODED} WHERE {cols[0]} IS NOT NULL AND _row % {k} = 0").fetchnumpy()
+    x = np.column_stack([np.asarray(sample[c], dtype=np.float64) for c in cols])
+    y = np.asarray(sample["y"], dtype=np.float64)
+    fit = fit_logit(x, y, lay.covariates, where=f"{panel.path}: columns {', '.join(lay.covariates)}")
+    B = len(spec.axis_levels(lay.band))
+    eta = fit.eta(x)
+    cuts = band_cuts(eta, B)
+    band = band_of(eta, cuts)
+    smd = smd_by_band(x, y, band, B)
+    unbalanced = [c for j, c in enumerate(lay.covariates) if np.nanmax(np.abs(smd[:, j])) >= SMD_BALANCED] \
+        if np.isfinite(smd).any() else []
+    diag = {"axis": lay.band, "covariates": list(lay.covariates), "bands": spec.axis_levels(lay.band),
+            "coef": [float(c) for c in fit.coef], "se": [float(s) for s in fit.se], "iterations": fit.iterations,
+            "converged": fit.converged, "cuts": [float(c) for c in cuts], "rows_used": int(len(y)),
+            "smd_by_band": [[None if not np.isfinite(v) else float(v) for v in row] for row in smd],
+            "smd_rule": SMD_BALANCED, "unbalanced": unbalanced,
+            "note": "score = logistic P(member | covariates) over panel rows (members and former members)"}
+    return band_sql(fit, cols, cuts), diag
+
+
+def _mask_codes(spec: Spec, axis: str, joint: JointCounts) -> np.ndarray:
+    """Bool (J,): the move of ``axis`` in each joint row is allowed (unknown codes pass)."""
+    dims, mask = move_mask(spec, axis)
+    grid, draw = list(spec.grid_order), list(spec.draw_order)
+    cols = [joint.cur[:, grid.index(d)] for d in dims[:-1]] + [joint.nxt[:, draw.index(axis)]]
+    ok = np.ones(len(joint.n), dtype=bool)
+    known = np.all([c >= 0 for c in cols], axis=0) if cols else ok
+    idx = tuple(np.where(known, c, 0) for c in cols)
+    ok = np.where(known, mask[idx], True)
+    return ok
+
+
+def _check_moves(spec, panel: Panel, joint: JointCounts, source: str, policy: str) -> tuple[JointCounts, int]:
+    keep = np.ones(len(joint.n), dtype=bool)
+    for axis in spec.draw_order:
+        ok = _mask_codes(spec, axis, joint)
+        if ok.all():
+            continue
+        j = int(np.argmax(~ok))
+        if policy == "error":
+            raise _forbidden_error(spec, panel, joint, j, axis, int(joint.n[~ok].sum()), source)
+        keep &= ok
+    dropped = int(joint.n[~keep].sum())
+    return JointCounts(joint.cur[keep], joint.nxt[keep], joint.n[keep]), dropped
+
+
+def _forbidden_error(spec, panel: Panel, joint: JointCounts, j: int, axis: str, total: int, source: str) -> PanelError:
+    lay = panel.layout
+    grid, draw = list(spec.grid_order), list(spec.draw_order)
+    conds = ["pp = p - 1"]
+    for i, a in enumerate(grid):
+        if spec.axes[a].kind != "cycle" and joint.cur[j, i] >= 0:
+            conds.append(f"q{lay.col(a)[1:]} = {int(joint.cur[j, i])}")
+    for r, a in enumerate(draw):
+        if joint.nxt[j, r] >= 0:
+            conds.append(f"{lay.col(a)} = {int(joint.nxt[j, r])}")
+    sql = transitions_sql(spec, source, extra=("_row",))
+    row = panel.con.execute(f"SELECT _row FROM ({sql}) x WHERE {' AND '.join(conds)} ORDER BY _row LIMIT 1").fetchone()
+    frm = spec.axis_levels(axis)[joint.cur[j, grid.index(axis)]]
+    to = spec.axis_levels(axis)[joint.nxt[j, draw.index(axis)]]
+    ctx = ", ".join(f"{a}={spec.axis_levels(a)[joint.cur[j, grid.index(a)]]}" for a in grid
+                    if spec.axes[a].kind == "fixed")
+    where = f"{panel.path}: row {row[0] if row else '?'}, column {axis}"
+    return PanelError(f"the move {axis} {frm} -> {to} ({ctx}) is forbidden by the spec's move rules "
+                      f"({total:,} such moves in the panel); correct the data, allow the move in axes.{axis}.moves / "
+                      "not_sold, or fit with --drop-forbidden to drop them with a count", where=where)
+
+
+def _check_joins(spec, panel: Panel, first: np.ndarray, policy: str) -> tuple[np.ndarray, int]:
+    """First joins into plans the rules forbid from the never-member level (or in a market)."""
+    lay = panel.layout
+    nm = lay.code(lay.status, lay.never_member)
+    allowed = _prospect_allowed(spec, lay.market)  # (M, S)
+    bad = (first[:, 1:, :] > 0) & ~allowed[:, None, :]
+    if not bad.any():
+        return first, 0
+    if policy == "drop":
+        out = first.copy()
+        n = int(out[:, 1:, :][bad].sum())
+        out[:, 1:, :][bad] = 0
+        return out, n
+    m, t, s = np.argwhere(bad)[0]
+    row = panel.con.execute(
+        f"SELECT _row FROM (SELECT _row, p, {lay.col(lay.market)} AS m, {lay.col(lay.status)} AS s, ROW_NUMBER() OVER "
+        f"(PARTITION BY account ORDER BY p) AS rn FROM {CODED}) f WHERE rn = 1 AND m = {m} AND s = {s} "
+        f"AND p = {panel.p_min + t + 1} ORDER BY _row LIMIT 1").fetchone()
+    st = spec.axis_levels(lay.status)
+    return first, _raise(PanelError(
+        f"an account's first row (its join) is in {st[s]} in market {spec.axis_levels(lay.market)[m]}, a move from "
+        f"{st[nm]} the spec's move rules forbid; correct the data, allow it in axes.{lay.status}.moves, or fit with "
+        "--drop-forbidden", where=f"{panel.path}: row {row[0] if row else '?'}, column {lay.status}"))
+
+
+def _raise(err: Exception):
+    raise err
+
+
+def _prospect_allowed(spec, market: str) -> np.ndarray:
+    """(M, S) allowed next status from the never-member level in each market."""
+    status = spec.status_axis
+    dims, mask = move_mask(spec, status)
+    nm = spec.axis_levels(status).index(spec.non_members[0])
+    M = len(spec.axis_levels(market))
+    out = np.ones((M, mask.shape[-1]), dtype=bool)
+    for mi in range(M):
+        idx = []
+        for d in dims[:-1]:
+            if d == status:
+                idx.append(nm)
+            elif d == market:
+                idx.append(mi)
+            else:
+                idx.append(slice(None))
+        sub = mask[tuple(idx)]
+        out[mi] = sub.reshape(-1, mask.shape[-1]).all(axis=0)
+    return out
+
+
+def _status_factor(spec, panel: Panel, f: Factor, C: np.ndarray, first: np.ndarray, sizes, options: FitOptions, rng):
+    """The status factor: panel moves for members and former members; the never-member rows
+    from the join hazard. Returns (fit, skip mask of never-member cells, joins diagnostics, extras)."""
+    lay = panel.layout
+    status = spec.status_axis
+    nm = lay.code(status, lay.never_member)
+    allowed = allowed_mask(spec, f)
+    fit = posterior(C, allowed, options.strength, options.draws, rng, axis=status)
+    given = list(f.given)
+    if status not in given:
+        raise PanelError(f"axes.{status}.given must include '{status}' (the current status) to fit from a panel",
+                         where="spec")
+    pos = given.index(status)
+    skip = np.zeros(f.shape[:-1], dtype=bool)
+    skip[(slice(None),) * pos + (nm,)] = True
+    m_levels = spec.axis_levels(lay.market)
+    allowed_p = _prospect_allowed(spec, lay.market)  # (M, S)
+    market_given = lay.market in given
+    rows_by = {}
+    extra = {}
+    for which in ("size", "low", "high"):
+        jc = join_counts(panel, first, getattr(sizes, which), which)
+        counts = jc.counts if market_given else jc.counts.sum(axis=0, keepdims=True)
+        al = np.broadcast_to((allowed_p if market_given else allowed_p.all(axis=0, keepdims=True))[:, None, :], counts.shape)
+        jf = posterior(counts, al, options.strength, options.draws if which == "size" else 0, rng,
+                       axis=f"{status}:{lay.never_member}")
+        rows_by[which] = (jc, jf)
+    jc, jf = rows_by["size"]
+    sel = (slice(None),) * pos + (nm,)
+    table = fit.table.copy()
+    table[sel] = prospect_rows(spec, lay.market, jc.cycle_axis, jf.table, f)[sel]
+    fit.table = table
+    if fit.draws is not None:
+        d = fit.draws.copy()
+        d[(slice(None),) + sel] = prospect_rows(spec, lay.market, jc.cycle_axis, jf.draws, f)[(slice(None),) + sel]
+        fit.draws = d
+    for which in ("low", "high"):
+        t = table.copy()
+        t[sel] = prospect_rows(spec, lay.market, rows_by[which][0].cycle_axis, rows_by[which][1].table, f)[sel]
+        extra[f"sensitivity.size_{which}.table.{status}"] = t
+    jdiag = {"market_axis": lay.market, "cycle_axis": jc.cycle_axis, "strength": jf.strength,
+             "hazard": hazard_summary(jc, m_levels),
+             "hazard_low_size": hazard_summary(rows_by["low"][0], m_levels),
+             "hazard_high_size": hazard_summary(rows_by["high"][0], m_levels),
+             "first_joins": {lv: int(jc.joins[i].sum()) for i, lv in enumerate(m_levels)},
+             "sizes_by_period": sizes.by_period,
+             "note": "never-member rows of the status factor: first joins / (size - accounts already tracked); "
+                     "extra arrays sensitivity.size_low/high hold the status table at the low/high sizes"}
+    return fit, skip, jdiag, extra
+
+
+def _borrow_never_member(spec, f: Factor, C: np.ndarray) -> np.ndarray:
+    """Never-members are not in the panel: their cells of a chance factor take the moves of the
+    former-member levels (summed)."""
+    status = spec.status_axis
+    st = spec.axis_levels(status)
+    nm = st.index(spec.non_members[0])
+    former = [st.index(lv) for lv in spec.non_members[1:]]
+    if not former:
+        return C
+    out = C.copy()
+    for i, g in enumerate(f.given):
+        base = g[5:] if g.startswith("next.") else g
+        if base != status:
+            continue
+        src = np.take(out, former, axis=i).sum(axis=i)
+        idx = [slice(None)] * out.ndim
+        idx[i] = nm
+        if out[tuple(idx)].sum() == 0:
+            out[tuple(idx)] = src
+    return out
+
+
+def _revenue(spec, panel: Panel) -> dict:
+    lay = panel.layout
+    st = spec.axis_levels(lay.status)
+    rows = panel.con.execute(f"SELECT {lay.col(lay.status)}, avg(revenue), count(revenue) FROM {CODED} "
+                             f"WHERE revenue IS NOT NULL GROUP BY 1").fetchall()
+    return {"mean_per_period_by_status": {st[int(s)]: float(a) for s, a, n in rows if n},
+            "note": "observed revenue per panel row (money per period); compare with the spec's reward streams"}

@@ -1,0 +1,458 @@
+"""The account panel and the market-size table: reading through DuckDB, validation, level coding.
+
+Panel columns (CSV with a header row, or Parquet), one row per account per period:
+
+* ``account``: the account id (text or integer; personal data, never printed);
+* ``period``: ``YYYY-MM`` (monthly models);
+* one column named for the status axis (e.g. ``status``) holding a level of it other than the
+  never-member level (the first non-member level, e.g. ``prospect``: people who never joined
+  do not appear in a panel);
+* one column per ``fixed`` axis and per ``chance`` axis (e.g. ``market``, ``engagement``),
+  except a propensity band axis, which is derived from its covariates;
+* the covariate columns a propensity band axis names (numeric);
+* optional ``revenue`` (money per period, a number >= 0).
+
+Counters (tenure, months since lapse) and cycles (calendar month) are *derived* from the
+history by :mod:`.counts`, never read from a column. Consecutive periods of an account are
+transitions; a gap in an account's history is an error (``gaps="error"``) or filled with the
+former-member level (``gaps="non_member"``; chance axes and covariates unknown there).
+
+Market-size table columns: ``market`` (levels of the spec's market axis: the fixed axis named
+``market``, else the first fixed axis), ``size`` (addressable accounts), ``low`` and ``high``
+(a plausible range, ``low <= size <= high``), optional ``period`` (``YYYY-MM``; then one row per
+market and panel period).
+
+Errors name the file, the data row (1-based, header not counted) and the column.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+
+from stateworth.errors import PanelError
+from stateworth.rules.spec import Spec
+
+GapPolicy = Literal["error", "non_member"]
+GAP_POLICIES = ("error", "non_member")
+PERIOD_RE = r"^[0-9]{4}-(0[1-9]|1[0-2])$"
+#: Internal table names in the DuckDB connection.
+CODED = "coded"
+
+
+@dataclass(frozen=True)
+class Layout:
+    """How a spec's axes map onto panel columns and internal code columns ``g<i>`` (grid position)."""
+
+    spec: Spec
+    status: str
+    market: str | None  # the fixed axis the market-size table refers to
+    observed: tuple[str, ...]  # axes read from columns (fixed, status, chance without propensity)
+    band: str | None  # the propensity band axis, derived
+    covariates: tuple[str, ...]
+    derived: tuple[str, ...]  # counters and cycles
+
+    @classmethod
+    def of(cls, spec: Spec) -> "Layout":
+        fixed = [n for n, a in spec.axes.items() if a.kind == "fixed"]
+        market = "market" if "market" in fixed else (fixed[0] if fixed else None)
+        band = next((n for n, a in spec.axes.items() if a.kind == "chance" and a.propensity is not None), None)
+        observed = tuple(n for n in spec.grid_order
+                         if spec.axes[n].kind in ("fixed", "status", "chance") and n != band)
+        derived = tuple(n for n in spec.grid_order if spec.axes[n].kind in ("counter", "cycle"))
+        cov = tuple(spec.axes[band].propensity.covariates) if band else ()
+        return cls(spec, spec.status_axis, market, observed, band, cov, derived)
+
+    def col(self, axis: str) -> str:
+        """The internal code column of an axis (engine-neutral identifier)."""
+        return f"g{self.spec.grid_order.index(axis)}"
+
+    def cov_col(self, i: int) -> str:
+        return f"v{i}"
+
+    @property
+    def never_member(self) -> str:
+        return self.spec.non_members[0]
+
+    @property
+    def former_levels(self) -> list[str]:
+        return self.spec.non_members[1:]
+
+    def code(self, axis: str, level: str) -> int:
+        return self.spec.axis_levels(axis).index(level)
+
+
+@dataclass
+class Panel:
+    """A validated, level-coded panel held in a DuckDB connection as table ``coded``.
+
+    Columns of ``coded``: ``_row`` (data row in the file, 1-based; 0 for gap fill rows), ``account``,
+    ``p`` (period index ``12 * year + month - 1``), ``g<i>`` (level code of axis at grid position i,
+    for observed axes), ``v<j>`` (covariates, DOUBLE), ``revenue`` (DOUBLE or NULL)."""
+
+    con: object  # duckdb.DuckDBPyConnection
+    layout: Layout
+    path: str
+    rows: int
+    accounts: int
+    p_min: int
+    p_max: int
+    filled: int = 0  # rows added by the gap policy
+    has_revenue: bool = False
+    notes: list[str] = field(default_factory=list)
+
+    def period_label(self, p: int) -> str:
+        return period_label(p)
+
+
+def period_label(p: int) -> str:
+    return f"{p // 12:04d}-{p % 12 + 1:02d}"
+
+
+def parse_period(text: str, where: str) -> int:
+    if not re.match(PERIOD_RE, text or ""):
+        raise PanelError(f"period '{text}' is not YYYY-MM (e.g. 2024-01)", where=where)
+    return int(text[:4]) * 12 + int(text[5:7]) - 1
+
+
+def connect(threads: int | None = None):
+    import duckdb
+
+    con = duckdb.connect(":memory:")
+    if threads:
+        con.execute(f"SET threads = {int(threads)}")
+    con.execute("SET preserve_insertion_order = true")
+    return con
+
+
+def _source(path: str, con) -> tuple[str, str]:
+    """A DuckDB relation text for a CSV/Parquet file, with a 1-based data row number ``_row``."""
+    p = Path(path)
+    if not p.is_file():
+        raise PanelError("no such file; give the path to a CSV or Parquet file", where=str(path))
+    lit = "'" + str(p).replace("'", "''") + "'"
+    suffix = p.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return f"(SELECT file_row_number + 1 AS _row, * EXCLUDE (file_row_number) FROM read_parquet({lit}, file_row_number = true))", "parquet"
+    if suffix in (".csv", ".txt", ".tsv"):
+        return f"(SELECT row_number() OVER () AS _row, * FROM read_csv({lit}, header = true, all_varchar = true))", "csv"
+    raise PanelError(f"unknown file type '{p.suffix}'; use .csv or .parquet", where=str(path))
+
+
+def _columns(con, rel: str, path: str) -> dict[str, str]:
+    import duckdb
+
+    try:
+        desc = con.execute(f"DESCRIBE SELECT * FROM {rel}").fetchall()
+    except duckdb.Error as e:
+        raise PanelError(f"cannot be read as a table ({str(e).splitlines()[0]})", where=path) from None
+    return {r[0]: r[1] for r in desc}
+
+
+def _q(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def _lit(s: str) -> str:
+    return "'" + s.replace("'", "''") + "'"
+
+
+def _first(con, sql: str):
+    return con.execute(sql).fetchone()
+
+
+def _case_codes(col: str, levels: list[str]) -> str:
+    whens = " ".join(f"WHEN {_lit(lv)} THEN {i}" for i, lv in enumerate(levels))
+    return f"CASE CAST({col} AS VARCHAR) {whens} END"
+
+
+def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str]], object]:
+    """Validate a panel file against a spec. Returns ``([(where, message)], connection)``; the
+    connection holds view ``raw`` (the file with ``_row``) when the columns were found."""
+    con = con or connect()
+    lay = Layout.of(spec)
+    rel, kind = _source(path, con)
+    cols = _columns(con, rel, path)
+    need = ["account", "period"] + list(lay.observed) + list(lay.covariates)
+    missing = [c for c in need if c not in cols]
+    if missing:
+        have = ", ".join(c for c in cols if c != "_row")
+        return [(path, f"missing required column(s) {', '.join(missing)}; the file has {have} "
+                       f"(see README 'Panel format')")], con
+    con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
+    probs: list[tuple[str, str]] = []
+
+    def example(cond: str, column: str, msg) -> None:
+        row = _first(con, f"SELECT _row, CAST({_q(column)} AS VARCHAR) FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
+        if row is not None:
+            n = _first(con, f"SELECT count(*) FROM raw WHERE {cond}")[0]
+            more = f" ({n:,} rows in all)" if n > 1 else ""
+            probs.append((f"{path}: row {row[0]}, column {column}", msg(row[1]) + more))
+
+    for c in ["account", "period"] + list(lay.observed):
+        example(f"{_q(c)} IS NULL", c, lambda v: "empty value; every row needs one")
+    ptype = cols["period"].upper()
+    if ptype.startswith("DATE") or ptype.startswith("TIMESTAMP"):
+        per = f"strftime({_q('period')}, '%Y-%m')"
+    else:
+        per = f"CAST({_q('period')} AS VARCHAR)"
+    example(f"{_q('period')} IS NOT NULL AND NOT regexp_matches({per}, '{PERIOD_RE}')", "period",
+            lambda v: f"period '{v}' is not YYYY-MM (e.g. 2024-01)")
+    for ax in lay.observed:
+        lv = spec.axis_levels(ax)
+        allowed = ", ".join(_lit(x) for x in lv)
+        example(f"{_q(ax)} IS NOT NULL AND CAST({_q(ax)} AS VARCHAR) NOT IN ({allowed})", ax,
+                lambda v, ax=ax, lv=lv: f"'{v}' is not a level of {ax}; levels are {', '.join(lv)}")
+    nm = lay.never_member
+    example(f"CAST({_q(lay.status)} AS VARCHAR) = {_lit(nm)}", lay.status,
+            lambda v: f"'{nm}' rows found: people who never joined do not appear in a panel (their joining "
+                      f"comes from the market-size table); use a former-member level ({', '.join(lay.former_levels) or 'none declared'}) "
+                      "for accounts that lapsed")
+    for c in lay.covariates:
+        example(f"{_q(c)} IS NULL OR TRY_CAST({_q(c)} AS DOUBLE) IS NULL OR NOT isfinite(TRY_CAST({_q(c)} AS DOUBLE))", c,
+                lambda v, c=c: f"covariate value '{v}' is not a finite number")
+    if "revenue" in cols:
+        example(f"{_q('revenue')} IS NOT NULL AND TRIM(CAST({_q('revenue')} AS VARCHAR)) <> '' AND "
+                f"TRY_CAST({_q('revenue')} AS DOUBLE) IS NULL", "revenue",
+                lambda v: f"revenue '{v}' is not a number (money per period, e.g. 29.0)")
+        example(f"TRY_CAST({_q('revenue')} AS DOUBLE) < 0 OR NOT isfinite(TRY_CAST({_q('revenue')} AS DOUBLE))", "revenue",
+                lambda v: f"revenue {v} is negative or not finite; revenue is money received, >= 0")
+    if probs:
+        return probs, con
+    # per-account history: duplicates, fixed axes that change
+    pexpr = f"CAST(substr({per}, 1, 4) AS INTEGER) * 12 + CAST(substr({per}, 6, 2) AS INTEGER) - 1"
+    con.execute(f"CREATE OR REPLACE TEMP VIEW raw_p AS SELECT *, {pexpr} AS _p FROM raw")
+    fixed = [a for a in lay.observed if spec.axes[a].kind == "fixed"]
+    lags = ", ".join([f"LAG(_p) OVER w AS _pp"] + [f"LAG(CAST({_q(a)} AS VARCHAR)) OVER w AS _f{i}" for i, a in enumerate(fixed)])
+    conds = ["_pp = _p"] + [f"_f{i} <> CAST({_q(a)} AS VARCHAR)" for i, a in enumerate(fixed)]
+    hist = (f"SELECT _row, _p, _pp, {', '.join(['CAST(' + _q(a) + ' AS VARCHAR) AS _c' + str(i) for i, a in enumerate(fixed)] or ['0 AS _none'])}, "
+            f"{', '.join(f'_f{i}' for i in range(len(fixed))) or '0 AS _none2'} FROM (SELECT *, {lags} FROM raw_p "
+            f"WINDOW w AS (PARTITION BY account ORDER BY _p, _row)) WHERE {' OR '.join(conds)} ORDER BY _row LIMIT 1")
+    row = _first(con, hist)
+    if row is not None:
+        if row[1] == row[2]:
+            probs.append((f"{path}: row {row[0]}, columns account, period",
+                          f"a second row for the same account and period {period_label(row[1])}; one row per account per period"))
+        else:
+            for i, a in enumerate(fixed):
+                if row[3 + i] != row[3 + len(fixed) + i]:
+                    probs.append((f"{path}: row {row[0]}, column {a}",
+                                  f"{a} changes within an account's history ('{row[3 + len(fixed) + i]}' then '{row[3 + i]}'); "
+                                  f"{a} is a fixed axis and never changes"))
+                    break
+    return probs, con
+
+
+def gap_example(con) -> tuple[int, int, int] | None:
+    """(row, previous period, period) of the first gap in an account's history, or None."""
+    return _first(con, f"SELECT _row, pp, p FROM (SELECT _row, p, LAG(p) OVER (PARTITION BY account ORDER BY p) AS pp "
+                       f"FROM {CODED}) WHERE p - pp > 1 ORDER BY _row LIMIT 1")
+
+
+def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) -> Panel:
+    """Validate and code a panel (see the module docstring). Raises :class:`PanelError` naming
+    the file, row and column of the first problem (``problems`` lists all found)."""
+    if gaps not in GAP_POLICIES:
+        raise PanelError(f"unknown gap policy '{gaps}'; use one of {', '.join(GAP_POLICIES)}", where="gaps")
+    if spec.model.period != "month":
+        raise PanelError(f"panels are monthly (period YYYY-MM); the spec's model.period is '{spec.model.period}'",
+                         where="model.period")
+    path = str(path)
+    probs, con = panel_problems(spec, path, con)
+    if probs:
+        raise _panel_error(probs)
+    lay = Layout.of(spec)
+    cols = _columns(con, "raw", path)
+    sel = ["_row", "account", "_p AS p"]
+    for ax in lay.observed:
+        sel.append(f"{_case_codes(_q(ax), spec.axis_levels(ax))} AS {lay.col(ax)}")
+    for i, c in enumerate(lay.covariates):
+        sel.append(f"CAST({_q(c)} AS DOUBLE) AS {lay.cov_col(i)}")
+    has_rev = "revenue" in cols
+    sel.append(f"TRY_CAST({_q('revenue')} AS DOUBLE) AS revenue" if has_rev else "CAST(NULL AS DOUBLE) AS revenue")
+    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS SELECT {', '.join(sel)} FROM raw_p")
+    filled = 0
+    gap = gap_example(con)
+    if gap is not None:
+        if gaps == "error":
+            raise PanelError(f"a gap in the account's history: no row for {period_label(gap[1] + 1)}"
+                             f"{'..' + period_label(gap[2] - 1) if gap[2] - gap[1] > 2 else ''} before "
+                             f"{period_label(gap[2])}; add the missing months or fit with gaps = non_member "
+                             "(a gap is then a former-member period)", where=f"{path}: row {gap[0]}, column period")
+        if not lay.former_levels:
+            raise PanelError("gaps cannot be filled as non-member periods: the status axis has no former-member "
+                             "level", where=f"{path}: row {gap[0]}, column period")
+        filled = fill_gaps(con, lay)
+    n, acc, pmin, pmax = _first(con, f"SELECT count(*), count(DISTINCT account), min(p), max(p) FROM {CODED}")
+    return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
+                 p_max=int(pmax), filled=filled, has_revenue=has_rev)
+
+
+def fill_gaps(con, lay: Layout) -> int:
+    """Insert a former-member row for every missing period inside an account's history (the
+    first former-member level; chance axes, covariates and revenue unknown). Returns the count."""
+    former = lay.code(lay.status, lay.former_levels[0])
+    cols = [r[0] for r in con.execute(f"DESCRIBE {CODED}").fetchall()]
+    fixed = {lay.col(a) for a in lay.observed if lay.spec.axes[a].kind == "fixed"}
+    out = []
+    for c in cols:
+        if c == "_row":
+            out.append("0 AS _row")
+        elif c in ("account",) or c in fixed:
+            out.append(c)
+        elif c == "p":
+            out.append("UNNEST(range(pp + 1, p)) AS p")
+        elif c == lay.col(lay.status):
+            out.append(f"{former} AS {c}")
+        else:
+            out.append(f"NULL AS {c}")
+    before = _first(con, f"SELECT count(*) FROM {CODED}")[0]
+    con.execute(f"INSERT INTO {CODED} SELECT {', '.join(out)} FROM (SELECT *, LAG(p) OVER (PARTITION BY account "
+                f"ORDER BY p) AS pp FROM {CODED}) WHERE p - pp > 1")
+    return int(_first(con, f"SELECT count(*) FROM {CODED}")[0] - before)
+
+
+def _panel_error(probs: list[tuple[str, str]]) -> PanelError:
+    where, msg = probs[0]
+    if len(probs) > 1:
+        msg += f" (and {len(probs) - 1} more problem(s); `stateworth check --panel` lists them all)"
+    err = PanelError(msg, where=where)
+    err.problems = [f"{w}: {m}" for w, m in probs]  # type: ignore[attr-defined]
+    return err
+
+
+# ---------------------------------------------------------------------------------------------
+# market sizes
+
+
+@dataclass(frozen=True)
+class MarketSizes:
+    """Addressable accounts by market level (and period): ``size``, ``low``, ``high`` are
+    ``(M, T)`` over the market axis levels and the panel periods ``p_min..p_max``."""
+
+    axis: str
+    size: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+    by_period: bool
+
+
+def load_markets(spec: Spec, path: str, panel: Panel) -> MarketSizes:
+    """Read and validate the market-size table against the spec and the coded panel."""
+    probs = market_problems(spec, str(path), panel)
+    if isinstance(probs, MarketSizes):
+        return probs
+    raise _panel_error(probs)
+
+
+def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]] | MarketSizes:
+    con, lay = panel.con, panel.layout
+    if lay.market is None:
+        return [(path, "the spec declares no fixed axis; a market-size table needs a market axis "
+                       "(kind = \"fixed\", named market)")]
+    rel, _ = _source(path, con)
+    cols = _columns(con, rel, path)
+    missing = [c for c in ("market", "size", "low", "high") if c not in cols]
+    if missing:
+        return [(path, f"missing required column(s) {', '.join(missing)}; columns are market, size, low, high "
+                       "and optionally period")]
+    con.execute(f"CREATE OR REPLACE TEMP VIEW mraw AS SELECT * FROM {rel}")
+    by_period = "period" in cols
+    rows = con.execute("SELECT _row, CAST(market AS VARCHAR), CAST(size AS VARCHAR), CAST(low AS VARCHAR), "
+                       f"CAST(high AS VARCHAR), {'CAST(period AS VARCHAR)' if by_period else 'NULL'} FROM mraw ORDER BY _row").fetchall()
+    levels = spec.axis_levels(lay.market)
+    T = panel.p_max - panel.p_min + 1
+    M = len(levels)
+    size = np.full((M, T), np.nan)
+    low = np.full((M, T), np.nan)
+    high = np.full((M, T), np.nan)
+    probs: list[tuple[str, str]] = []
+    for r, mk, *vals, per in rows:
+        where = f"{path}: row {r}"
+        if mk not in levels:
+            probs.append((f"{where}, column market", f"'{mk}' is not a level of {lay.market}; levels are {', '.join(levels)}"))
+            continue
+        nums = []
+        for name, v in zip(("size", "low", "high"), vals):
+            try:
+                x = float(v)
+                if not np.isfinite(x) or x < 0:
+                    raise ValueError
+                nums.append(x)
+            except (TypeError, ValueError):
+                probs.append((f"{where}, column {name}", f"'{v}' is not a count >= 0 of addressable accounts"))
+        if len(nums) < 3:
+            continue
+        s, lo, hi = nums
+        if not lo <= s <= hi:
+            probs.append((f"{where}, columns low, size, high", f"need low <= size <= high (got {lo:g}, {s:g}, {hi:g})"))
+            continue
+        if by_period:
+            try:
+                t = parse_period(per, f"{where}, column period") - panel.p_min
+            except PanelError as e:
+                probs.append((e.where, e.message))
+                continue
+            if not 0 <= t < T:
+                continue  # a period outside the panel is not needed
+            ts = [t]
+        else:
+            ts = list(range(T))
+        i = levels.index(mk)
+        if not np.isnan(size[i, ts[0]]):
+            probs.append((f"{where}, column market", f"a second row for market '{mk}'"
+                          + (f" and period {per}" if by_period else "")))
+            continue
+        size[i, ts], low[i, ts], high[i, ts] = s, lo, hi
+    if probs:
+        return probs
+    seen = con.execute(f"SELECT {lay.col(lay.market)}, min(p) FROM {CODED} GROUP BY 1").fetchall()
+    for code, pmin in seen:
+        t = int(pmin) - panel.p_min
+        if np.isnan(size[code]).all():
+            probs.append((f"{path}, column market", f"market '{levels[code]}' appears in the panel ({panel.path}) but "
+                          "has no row in the size table; add its addressable size"))
+        elif np.isnan(size[code, t:]).any():
+            bad = t + int(np.argmax(np.isnan(size[code, t:])))
+            probs.append((f"{path}, column period", f"no size for market '{levels[code]}' in period "
+                          f"{period_label(panel.p_min + bad)}, which the panel covers"))
+    if probs:
+        return probs
+    # tracked accounts by market and period must fit inside the addressable size
+    firsts = con.execute(f"SELECT {lay.col(lay.market)}, fp, count(*) FROM (SELECT account, min(p) AS fp, "
+                         f"min({lay.col(lay.market)}) AS {lay.col(lay.market)} FROM {CODED} GROUP BY account) GROUP BY 1, 2").fetchall()
+    tracked = np.zeros((M, T))
+    for code, fp, n in firsts:
+        tracked[code, int(fp) - panel.p_min] += n
+    tracked = np.cumsum(tracked, axis=1)
+    for which, arr in (("size", size), ("low", low)):
+        over = np.nan_to_num(arr, nan=np.inf) < tracked
+        if over.any():
+            i, t = np.argwhere(over)[0]
+            probs.append((f"{path}, column {which}", f"market '{levels[i]}' has {which} {arr[i, t]:g} but the panel already "
+                          f"tracks {int(tracked[i, t]):,} accounts there by {period_label(panel.p_min + t)}; the addressable "
+                          "size counts every account that could join, members and former members included"))
+    if probs:
+        return probs
+    fill = lambda a: np.where(np.isnan(a), 0.0, a)  # noqa: E731 - markets absent from the panel
+    return MarketSizes(lay.market, fill(size), fill(low), fill(high), by_period)
+
+
+def check_panel(spec: Spec, panel_path: str, markets_path: str | None, *, gaps: GapPolicy = "error") -> list[str]:
+    """Every problem found in a panel (and its market-size table) against a spec, as
+    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine)."""
+    try:
+        panel = load_panel(spec, str(panel_path), gaps=gaps)
+    except PanelError as e:
+        return list(getattr(e, "problems", [str(e)]))
+    if markets_path is None:
+        return []
+    try:
+        res = market_problems(spec, str(markets_path), panel)
+    except PanelError as e:
+        return [str(e)]
+    return [] if isinstance(res, MarketSizes) else [f"{w}: {m}" for w, m in res]

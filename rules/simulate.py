@@ -1,0 +1,202 @@
+"""A synthetic account panel drawn from a spec with known factor tables (the ground truth).
+
+``population`` addressable people are spread evenly at random over the levels of each fixed
+axis. Everyone starts, one period before the panel's first period, as a never-member (the first
+non-member level), at the lowest level of each chance axis, with counters at their never-member
+start (:func:`stateworth.rules.counts.counter_start`); a propensity band axis instead starts at a
+uniformly drawn band. Each period every person moves by the true factors in draw order, counters
+by their index map and cycles by one. A person enters the panel in the period they first join
+and stays in it (as a former member after lapsing); never-members never appear.
+
+Covariates of a propensity band axis confound membership: covariate j of a row is
+``(-1)^j (band - (B - 1) / 2) + 0.15 z`` with z standard normal (standardised units), so the
+band, which drives joining, lapsing and re-joining in the true tables, is what they measure.
+Revenue is the plan's list price from the first reward stream that has prices (0 otherwise).
+
+The market-size table holds the true population per market with low / high at -/+ 10 % (low
+never below the accounts the panel tracks there).
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from stateworth.errors import SpecError
+from stateworth.rules.counts import counter_start
+from stateworth.rules.factors import factors_of, table_from_rows
+from stateworth.rules.operator import counter_index
+from stateworth.rules.panel import Layout, parse_period, period_label
+
+COVARIATE_NOISE = 0.15
+
+
+@dataclass
+class Simulation:
+    """``panel`` and ``markets`` are pyarrow Tables; ``truth`` the factor tables drawn from."""
+
+    panel: object
+    markets: object
+    truth: dict[str, np.ndarray]
+    population: dict[str, int]
+
+
+def _draw(rng: np.random.Generator, probs: np.ndarray) -> np.ndarray:
+    """One categorical draw per row of ``probs`` (n, K)."""
+    u = rng.random(len(probs))[:, None]
+    c = np.cumsum(probs, axis=1)
+    out = (u >= c[:, :-1]).sum(axis=1) if probs.shape[1] > 1 else np.zeros(len(probs), dtype=np.int64)
+    return out.astype(np.int64)
+
+
+def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start: str = "2024-01",
+                   tables: dict[str, np.ndarray] | None = None) -> Simulation:
+    """Simulate ``periods`` months of ``population`` addressable people (see the module doc)."""
+    import pyarrow as pa
+
+    if population < 1 or periods < 2:
+        raise SpecError("simulate needs at least 1 person and 2 periods", where="--accounts/--periods")
+    lay = Layout.of(spec)
+    if lay.market is None:
+        raise SpecError("simulate needs a fixed market axis (the market-size table refers to it)", where="axes")
+    rng = np.random.default_rng(seed)
+    factors = factors_of(spec)
+    truth = {f.axis: np.asarray((tables or {}).get(f.axis, None) if tables and f.axis in tables
+                                else table_from_rows(spec, f), dtype=np.float64) for f in factors}
+    grid = spec.grid_order
+    st = spec.status_axis
+    st_levels = spec.axis_levels(st)
+    nm = lay.code(st, lay.never_member)
+    p0 = parse_period(start, "--start")
+    N = int(population)
+    cur: dict[str, np.ndarray] = {}
+    for a in grid:
+        kind = spec.axes[a].kind
+        size = len(spec.axis_levels(a))
+        if kind == "fixed" or a == lay.band:
+            cur[a] = rng.integers(0, size, N)
+        elif kind == "counter":
+            cur[a] = np.full(N, counter_start(spec, a), dtype=np.int64)
+        elif kind == "cycle":
+            cur[a] = np.full(N, (p0 - 1) % size, dtype=np.int64)
+        elif a == st:
+            cur[a] = np.full(N, nm, dtype=np.int64)
+        else:
+            cur[a] = np.zeros(N, dtype=np.int64)
+    counters = {a: counter_index(spec, a) for a in grid if spec.axes[a].kind == "counter"}
+    joined = np.zeros(N, dtype=bool)
+    price = _prices(spec)
+    chunks: list[dict[str, np.ndarray]] = []
+    for t in range(periods):
+        nxt: dict[str, np.ndarray] = {}
+        for f in factors:
+            idx = [nxt[g[5:]] if g.startswith("next.") else cur[g] for g in f.given]
+            T = truth[f.axis]
+            flat = np.ravel_multi_index(idx, f.shape[:-1]) if idx else np.zeros(N, dtype=np.int64)
+            nxt[f.axis] = _draw(rng, T.reshape(-1, f.shape[-1])[flat])
+        for a in grid:
+            kind = spec.axes[a].kind
+            if kind == "fixed":
+                nxt[a] = cur[a]
+            elif kind == "counter":
+                nxt[a] = counters[a][cur[a], cur[st], nxt[st]].astype(np.int64)
+            elif kind == "cycle":
+                nxt[a] = (cur[a] + 1) % len(spec.axis_levels(a))
+        cur = nxt
+        joined |= cur[st] != nm
+        who = np.flatnonzero(joined)
+        row = {"account": who.astype(np.int64), "p": np.full(len(who), p0 + t, dtype=np.int64)}
+        for a in lay.observed:
+            row[a] = cur[a][who]
+        if lay.band:
+            row["_band"] = cur[lay.band][who]
+        row["revenue"] = price[cur[st][who], cur[lay.market][who]]
+        chunks.append(row)
+    cols = {k: np.concatenate([c[k] for c in chunks]) for k in chunks[0]}
+    n = len(cols["account"])
+    arrays = {"account": pa.array(cols["account"]),
+              "period": pa.DictionaryArray.from_arrays(
+                  pa.array((cols["p"] - p0).astype(np.int32)),
+                  pa.array([period_label(p0 + t) for t in range(periods)]))}
+    for a in lay.observed:
+        arrays[a] = pa.DictionaryArray.from_arrays(pa.array(cols[a].astype(np.int32)), pa.array(spec.axis_levels(a)))
+    if lay.band:
+        B = len(spec.axis_levels(lay.band))
+        centre = cols["_band"] - (B - 1) / 2.0
+        for j, c in enumerate(lay.covariates):
+            arrays[c] = pa.array((-1) ** j * centre + COVARIATE_NOISE * rng.standard_normal(n))
+    arrays["revenue"] = pa.array(cols["revenue"])
+    panel = pa.table(arrays)
+    m_levels = spec.axis_levels(lay.market)
+    pop = np.bincount(cur[lay.market], minlength=len(m_levels))
+    tracked = np.bincount(cur[lay.market][joined], minlength=len(m_levels))
+    low = np.maximum(np.floor(0.9 * pop), tracked).astype(np.int64)
+    high = np.ceil(1.1 * pop).astype(np.int64)
+    markets = pa.table({"market": m_levels, "size": pop.astype(np.int64), "low": low, "high": high})
+    return Simulation(panel=panel, markets=markets, truth=truth,
+                      population={lv: int(x) for lv, x in zip(m_levels, pop)})
+
+
+def _prices(spec) -> np.ndarray:
+    """``price[status code, market code]``: list price of a plan (0 for non-members)."""
+    lay = Layout.of(spec)
+    st_levels = spec.axis_levels(spec.status_axis)
+    m_levels = spec.axis_levels(lay.market)
+    out = np.zeros((len(st_levels), len(m_levels)))
+    stream = next((r for r in spec.rewards.values() if r.price), None)
+    if stream is None:
+        return out
+    for plan, val in stream.price.items():
+        i = st_levels.index(plan)
+        if isinstance(val, dict):
+            for j, m in enumerate(m_levels):
+                out[i, j] = val.get(m, 0.0)
+        else:
+            out[i, :] = val
+    return out
+
+
+def markets_path_for(panel_path: str | Path) -> Path:
+    """Where :func:`write_simulation` puts the market-size table: beside the panel, named
+    ``<panel stem>.markets.csv``."""
+    p = Path(panel_path)
+    return p.with_name(p.name[: -len(p.suffix)] + ".markets.csv" if p.suffix else p.name + ".markets.csv")
+
+
+def _atomic(path: Path, write) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.tmp-", dir=path.parent)
+    os.close(fd)
+    try:
+        write(tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_table(table, path: str | Path) -> Path:
+    """Write a pyarrow Table as Parquet (``.parquet``) or CSV (anything else), atomically."""
+    import pyarrow.csv as pcsv
+    import pyarrow.parquet as pq
+
+    path = Path(path)
+    if path.suffix.lower() in (".parquet", ".pq"):
+        _atomic(path, lambda t: pq.write_table(table, t))
+    else:
+        plain = table.cast(__import__("pyarrow").schema(
+            [(f.name, f.type.value_type if hasattr(f.type, "value_type") else f.type) for f in table.schema]))
+        _atomic(path, lambda t: pcsv.write_csv(plain, t))
+    return path
+
+
+def write_simulation(sim: Simulation, panel_path: str | Path) -> tuple[Path, Path]:
+    """Write the panel to ``panel_path`` and the market-size table beside it (CSV)."""
+    p = write_table(sim.panel, panel_path)
+    m = write_table(sim.markets, markets_path_for(panel_path))
+    return p, m

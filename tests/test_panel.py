@@ -1,0 +1,191 @@
+"""Panel and market-size table: every kind of bad input is an error naming file, row and column;
+counters derived from the history match the spec's counter index map."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stateworth.errors import PanelError
+from stateworth.rules import load_spec
+from stateworth.rules.counts import count_duckdb, counter_start
+from stateworth.rules.fit import FitOptions, fit_panel, fit_to_dir
+from stateworth.rules.operator import counter_index
+from stateworth.rules.panel import check_panel, load_markets, load_panel
+from stateworth.rules.simulate import simulate_panel, write_simulation
+
+SPEC = Path(__file__).parent / "data" / "mini_fitness.toml"
+
+
+@pytest.fixture(scope="module")
+def spec():
+    return load_spec(SPEC)
+
+
+@pytest.fixture(scope="module")
+def files(spec, tmp_path_factory):
+    d = tmp_path_factory.mktemp("panel")
+    sim = simulate_panel(spec, 600, 8, seed=3)
+    p, m = write_simulation(sim, d / "panel.csv")
+    return pd.read_csv(p, dtype=str), pd.read_csv(m), d
+
+
+def _write(df: pd.DataFrame, d: Path, name: str) -> str:
+    path = d / name
+    df.to_csv(path, index=False)
+    return str(path)
+
+
+def _err(spec, panel, markets=None, **kw) -> PanelError:
+    with pytest.raises(PanelError) as ei:
+        pan = load_panel(spec, panel, **kw)
+        if markets is not None:
+            load_markets(spec, markets, pan)
+    return ei.value
+
+
+def test_clean_panel_loads(spec, files):
+    df, mk, d = files
+    p = _write(df, d, "ok.csv")
+    m = _write(mk, d, "ok.markets.csv")
+    pan = load_panel(spec, p)
+    assert pan.rows == len(df) and pan.accounts == df["account"].nunique()
+    assert load_markets(spec, m, pan).size.shape[0] == 2
+    assert check_panel(spec, p, m) == []
+
+
+def test_missing_column(spec, files):
+    df, _, d = files
+    p = _write(df.drop(columns=["engagement"]), d, "missing.csv")
+    e = _err(spec, p)
+    assert "missing.csv" in str(e) and "engagement" in str(e)
+
+
+def test_unknown_level(spec, files):
+    df, _, d = files
+    bad = df.copy()
+    bad.loc[5, "engagement"] = "medium"
+    e = _err(spec, _write(bad, d, "level.csv"))
+    assert "level.csv: row 6, column engagement" in str(e) and "'medium'" in str(e) and "low, high" in str(e)
+
+
+def test_never_member_rows_refused(spec, files):
+    df, _, d = files
+    bad = df.copy()
+    bad.loc[2, "status"] = "prospect"
+    e = _err(spec, _write(bad, d, "prospect.csv"))
+    assert "row 3, column status" in str(e) and "never joined" in str(e)
+
+
+def test_duplicate_account_period(spec, files):
+    df, _, d = files
+    bad = pd.concat([df, df.iloc[[10]]], ignore_index=True)
+    e = _err(spec, _write(bad, d, "dup.csv"))
+    assert f"row {len(bad)}, columns account, period" in str(e) and "same account and period" in str(e)
+    assert df.iloc[10]["account"] not in str(e).split("row")[0]  # no account id printed
+
+
+def test_unparsable_period(spec, files):
+    df, _, d = files
+    bad = df.copy()
+    bad.loc[7, "period"] = "2024/03"
+    e = _err(spec, _write(bad, d, "period.csv"))
+    assert "row 8, column period" in str(e) and "YYYY-MM" in str(e)
+
+
+def test_gap_policy(spec, files):
+    df, mk, d = files
+    # drop a middle row of an account with a long history -> a gap
+    counts = df.groupby("account")["period"].count()
+    acc = counts[counts >= 4].index[0]
+    rows = df.index[df["account"] == acc]
+    bad = df.drop(index=rows[1])
+    p = _write(bad, d, "gap.csv")
+    e = _err(spec, p)
+    assert "gap.csv: row" in str(e) and "column period" in str(e) and "non_member" in str(e)
+    pan = load_panel(spec, p, gaps="non_member")
+    assert pan.filled == 1 and pan.rows == len(df)
+    m = _write(mk, d, "gap.markets.csv")
+    res = fit_panel(spec, p, m, FitOptions(gaps="non_member", draws=0))
+    assert res.diagnostics["panel"]["gap_rows_filled"] == 1
+
+
+@pytest.mark.parametrize("value,word", [("-3.5", "negative"), ("lots", "not a number")])
+def test_bad_revenue(spec, files, value, word):
+    df, _, d = files
+    bad = df.copy()
+    bad.loc[4, "revenue"] = value
+    e = _err(spec, _write(bad, d, "rev.csv"))
+    assert "row 5, column revenue" in str(e) and word in str(e)
+
+
+def test_market_missing_from_size_table(spec, files):
+    df, mk, d = files
+    p = _write(df, d, "m1.csv")
+    m = _write(mk[mk["market"] != "south"], d, "m1.markets.csv")
+    e = _err(spec, p, m)
+    assert "m1.markets.csv, column market" in str(e) and "'south'" in str(e)
+
+
+def test_market_size_smaller_than_accounts(spec, files):
+    df, mk, d = files
+    p = _write(df, d, "m2.csv")
+    small = mk.copy()
+    small.loc[small["market"] == "north", ["size", "low"]] = 5
+    e = _err(spec, p, _write(small, d, "m2.markets.csv"))
+    assert "m2.markets.csv, column size" in str(e) and "already tracks" in str(e)
+
+
+def test_market_table_bad_rows(spec, files):
+    df, mk, d = files
+    p = _write(df, d, "m3.csv")
+    bad = mk.copy()
+    bad.loc[1, "high"] = 1  # high below size
+    e = _err(spec, p, _write(bad, d, "m3.markets.csv"))
+    assert "m3.markets.csv: row 2, columns low, size, high" in str(e)
+
+
+def test_check_panel_lists_problems(spec, files):
+    df, mk, d = files
+    bad = df.copy()
+    bad.loc[1, "engagement"] = "medium"
+    bad.loc[3, "revenue"] = "-1"
+    probs = check_panel(spec, _write(bad, d, "many.csv"), None)
+    assert len(probs) == 2 and any("column engagement" in x for x in probs) and any("column revenue" in x for x in probs)
+
+
+def test_no_partial_model_when_fit_fails(spec, files, tmp_path):
+    df, mk, d = files
+    p = _write(df, d, "np.csv")
+    m = _write(mk[mk["market"] != "south"], d, "np.markets.csv")
+    out = tmp_path / "model"
+    with pytest.raises(PanelError):
+        fit_to_dir(spec, p, m, out, FitOptions(draws=0))
+    assert not out.exists() and list(tmp_path.iterdir()) == []
+
+
+def test_counters_derived_from_history(spec, files):
+    """The counter the SQL derives equals iterating the spec's counter index map row by row."""
+    df, _, d = files
+    pan = load_panel(spec, _write(df, d, "ctr.csv"))
+    joint = count_duckdb(spec, pan.con, "coded")
+    grid = spec.grid_order
+    ti, si = grid.index("tenure"), grid.index("status")
+    idx = counter_index(spec, "tenure")
+    st = spec.axis_levels("status")
+    expect: dict[tuple[int, int], int] = {}
+    for _, g in df.sort_values(["account", "period"]).groupby("account"):
+        prev_s, c = st.index("prospect"), counter_start(spec, "tenure")
+        prev_c = None
+        for s in g["status"].map(st.index):
+            c = int(idx[c, prev_s, s])
+            if prev_c is not None:
+                expect[(prev_c, prev_s)] = expect.get((prev_c, prev_s), 0) + 1
+            prev_c, prev_s = c, s
+    got: dict[tuple[int, int], int] = {}
+    for row, n in zip(joint.cur, joint.n):
+        got[(int(row[ti]), int(row[si]))] = got.get((int(row[ti]), int(row[si])), 0) + int(n)
+    assert got == expect
