@@ -1,0 +1,211 @@
+"""Serving benchmark: the 3.6 x 10^5-state reference model behind ``stateworth serve``.
+
+The server runs in its own process on a loopback port; this process is the load generator
+(one gRPC channel per caller thread, the stateworth Python client). Every phase is bounded by
+a call count and a time limit. Measured:
+
+* single-value unary calls (GetValue) at 1, 8 and 32 concurrent callers: calls per second and
+  p50 / p99 latency as seen by the caller (ms), and errors;
+* values per second through the batch form (BatchGetValues, 10^5 states per call, level codes);
+* the marginal-transition table (ListMarginalValues, top 20): the first call (compiles the
+  adjoint solve and the table gradients) and a second call for another cohort (solves, no
+  compile), and a cached repeat.
+
+Aims (issue 6, on the 2-core development machine): p99 under 5 ms at 8 callers, at least
+10^6 values/s batch, no error. Writes bench/out/serve.json.
+
+    .venv/bin/python bench/serve_bench.py [--calls 4000] [--seconds 20]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import shutil
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+OUT = HERE / "out"
+sys.path.insert(0, str(HERE))
+
+
+def build_artifact(model_dir: Path) -> dict:
+    from models import build
+
+    from stateworth.rules import save_model
+
+    t0 = time.perf_counter()
+    m = build("360k")
+    save_model(m, model_dir / "reference-360k")
+    return {"name": m.name, "version": m.version, "states": m.n_states, "compile_s": time.perf_counter() - t0,
+            "axes": {a.name: list(a.levels) for a in m.grid.axes}}
+
+
+def percentile(a: list[float], q: float) -> float:
+    return float(np.percentile(np.asarray(a), q)) if a else float("nan")
+
+
+def unary_phase(target: str, model: str, states: list[dict], callers: int, calls: int, seconds: float) -> dict:
+    from stateworth.clients.client import Client
+
+    lat: list[list[float]] = [[] for _ in range(callers)]
+    errors = [0] * callers
+    per = max(calls // callers, 1)
+    end = time.perf_counter() + seconds
+    barrier = threading.Barrier(callers + 1)
+
+    def worker(k: int) -> None:
+        with Client(target, timeout=10) as c:
+            c.value(model, states[k % len(states)])  # connect outside the timed window
+            barrier.wait()
+            for i in range(per):
+                s = states[(k * 7919 + i) % len(states)]
+                t = time.perf_counter()
+                try:
+                    c.value(model, s)
+                except Exception:  # noqa: BLE001 - counted as an error, the phase goes on
+                    errors[k] += 1
+                lat[k].append(time.perf_counter() - t)
+                if t > end:
+                    break
+
+    ts = [threading.Thread(target=worker, args=(k,)) for k in range(callers)]
+    for t in ts:
+        t.start()
+    barrier.wait()
+    t0 = time.perf_counter()
+    for t in ts:
+        t.join()
+    wall = time.perf_counter() - t0
+    flat = [x for xs in lat for x in xs]
+    return {"callers": callers, "calls": len(flat), "seconds": wall, "calls_per_s": len(flat) / wall,
+            "p50_ms": percentile(flat, 50) * 1e3, "p99_ms": percentile(flat, 99) * 1e3,
+            "max_ms": max(flat) * 1e3, "errors": int(sum(errors))}
+
+
+def batch_phase(target: str, model: str, shape: list[int], per_call: int, calls: int, seconds: float) -> dict:
+    from stateworth.clients.client import Client
+
+    rng = np.random.default_rng(0)
+    names = list(shape)
+    with Client(target, timeout=60) as c:
+        cols = {a: rng.integers(0, n, size=per_call) for a, n in shape.items()}
+        c.values(model, cols)  # warm
+        t0 = time.perf_counter()
+        done, errors = 0, 0
+        for _ in range(calls):
+            try:
+                r = c.values(model, cols)
+                done += len(np.asarray(r.values))
+            except Exception:  # noqa: BLE001
+                errors += 1
+            if time.perf_counter() - t0 > seconds:
+                break
+        wall = time.perf_counter() - t0
+        chunks = [{a: v[k:k + per_call // 4] for a, v in cols.items()} for k in range(0, per_call, per_call // 4)]
+        t1 = time.perf_counter()
+        streamed = sum(len(np.asarray(o.values)) for _ in range(3) for o in c.stream_values(model, chunks))
+        swall = time.perf_counter() - t1
+    return {"states_per_call": per_call, "calls": calls, "values": done, "seconds": wall, "values_per_s": done / wall,
+            "errors": errors, "axes": names, "stream_values_per_s": streamed / swall}
+
+
+def marginal_phase(target: str, model: str, axes: dict) -> dict:
+    from stateworth.clients.client import Client
+
+    out = {}
+    with Client(target, timeout=600, solve_timeout=600) as c:
+        for label, market in (("first_s", 0), ("second_s", 1), ("cached_s", 1)):
+            cohort = {"market": np.array([market] * 5), "tenure": np.array([0, 3, 6, 12, 24]),
+                      "status": np.array([2, 2, 3, 3, 4]), "engagement": np.array([1, 2, 2, 3, 4]),
+                      "band": np.array([5, 10, 15, 10, 5])}
+            t = time.perf_counter()
+            r = c.marginal_values(model, cohort, top=20)
+            out[label] = time.perf_counter() - t
+        out["entries"] = len(r.entries)
+        out["top_entry"] = {"axis": r.entries[0].axis, "to": r.entries[0].to, "per_point": r.entries[0].per_point,
+                            "unit": r.objective.unit}
+    return out
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--calls", type=int, default=4000, help="unary calls per concurrency level (bound)")
+    ap.add_argument("--seconds", type=float, default=20.0, help="time bound per phase")
+    ap.add_argument("--threads", type=int, default=8, help="server threads")
+    args = ap.parse_args()
+    OUT.mkdir(parents=True, exist_ok=True)
+    model_dir = OUT / "serve-models"
+    shutil.rmtree(model_dir, ignore_errors=True)
+    model_dir.mkdir(parents=True)
+    info = build_artifact(model_dir)
+    print(f"reference model {info['name']} {info['version']}: {info['states']:,} states", flush=True)
+
+    t0 = time.perf_counter()
+    cmd = [sys.executable, "-m", "stateworth", "serve", str(model_dir), "--port", "0", "--threads",
+           str(args.threads)]
+    proc = subprocess.Popen(cmd, stderr=subprocess.PIPE, text=True, env=dict(os.environ, PYTHONUNBUFFERED="1"),
+                            cwd=ROOT)
+    port = None
+    for line in proc.stderr:
+        try:
+            ev = json.loads(line)
+        except ValueError:
+            continue
+        if ev.get("event") == "listening":
+            port = ev["port"]
+        if ev.get("event") == "serving":
+            break
+    else:
+        raise SystemExit("the server exited before serving")
+    drain = threading.Thread(target=lambda: [None for _ in proc.stderr], daemon=True)  # keep the pipe empty
+    drain.start()
+    ready_s = time.perf_counter() - t0
+    target = f"127.0.0.1:{port}"
+    print(f"server ready in {ready_s:.1f} s (load, verify and solve) on {target}", flush=True)
+    model = info["name"]
+    axes = info["axes"]
+    rng = np.random.default_rng(1)
+    states = [{a: lv[int(rng.integers(len(lv)))] for a, lv in axes.items()} for _ in range(2000)]
+    result = {"model": {k: info[k] for k in ("name", "version", "states", "compile_s")}, "server_ready_s": ready_s,
+              "server_threads": args.threads, "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "unary": [], "aims": {"p99_ms_at_8": 5.0, "batch_values_per_s": 1e6}}
+    try:
+        for callers in (1, 8, 32):
+            r = unary_phase(target, model, states, callers, args.calls, args.seconds)
+            result["unary"].append(r)
+            print(f"GetValue x{callers:2d}: {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms  "
+                  f"p99 {r['p99_ms']:.2f} ms  errors {r['errors']}", flush=True)
+        b = batch_phase(target, model, {a: len(lv) for a, lv in axes.items()}, 100_000, 30, args.seconds)
+        result["batch"] = b
+        print(f"BatchGetValues: {b['values_per_s']:,.0f} values/s ({b['states_per_call']:,} per call), "
+              f"StreamValues {b['stream_values_per_s']:,.0f} values/s, errors {b['errors']}", flush=True)
+        m = marginal_phase(target, model, axes)
+        result["marginal"] = m
+        print(f"ListMarginalValues: first {m['first_s']:.2f} s, second cohort {m['second_s']:.2f} s, "
+              f"cached {m['cached_s'] * 1e3:.1f} ms", flush=True)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        result["server_exit_code"] = proc.wait(60)
+    u8 = next(r for r in result["unary"] if r["callers"] == 8)
+    errors = sum(r["errors"] for r in result["unary"]) + result.get("batch", {}).get("errors", 0)
+    result["verdict"] = {"p99_at_8_ok": u8["p99_ms"] < 5.0,
+                         "batch_ok": result.get("batch", {}).get("values_per_s", 0) >= 1e6, "no_errors": errors == 0}
+    (OUT / "serve.json").write_text(json.dumps(result, indent=2))
+    shutil.rmtree(model_dir, ignore_errors=True)
+    print(f"wrote {OUT / 'serve.json'}: {result['verdict']}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

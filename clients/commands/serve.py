@@ -1,0 +1,68 @@
+"""``stateworth serve MODEL_DIR``: the gRPC service over a directory of compiled models."""
+
+from __future__ import annotations
+
+import argparse
+
+NAME = "serve"
+HELP = "serve the models of a directory over gRPC (values, contrasts, changes, read-outs)"
+DESCRIPTION = """Serve every compiled model in MODEL_DIR over gRPC (package stateworth.v1).
+
+MODEL_DIR holds artifact directories (manifest.json + arrays.npz, as `stateworth fit` or
+`stateworth solve --save` write them). Each is verified and solved at start; the admin calls
+LoadModel / ReloadModels load changed artifacts off to the side and swap them in atomically.
+Listens on loopback unless --host says otherwise; use TLS and tokens beyond it. Logs are JSON
+lines on stderr; --metrics-port serves Prometheus metrics at http://127.0.0.1:PORT/metrics.
+SIGTERM drains the calls in flight and exits 0. Health: grpc.health.v1, NOT_SERVING while no
+model is loaded.
+
+Answers are model-based estimates under the model's causal assumptions; not accounting figures.
+
+example:
+  stateworth serve models/ --port 50051 --token-file query.token --admin-token-file admin.token
+"""
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("model_dir", metavar="MODEL_DIR", help="directory of compiled model artifacts")
+    p.add_argument("--host", default="127.0.0.1", help="address to listen on (default loopback 127.0.0.1)")
+    p.add_argument("--port", type=int, default=50051, help="port (default 50051; 0 picks a free one)")
+    p.add_argument("--tls-cert", help="PEM certificate chain file (with --tls-key: serve TLS)")
+    p.add_argument("--tls-key", help="PEM private key file")
+    p.add_argument("--token-file", help="file holding the bearer token query calls must send")
+    p.add_argument("--admin-token-file", help="file holding the bearer token admin calls (loads) must send")
+    p.add_argument("--threads", type=int, default=16, help="threads answering calls (default 16)")
+    p.add_argument("--max-batch", type=int, default=1_000_000, help="states per batch, chunk or cohort (default 10^6)")
+    p.add_argument("--max-message-mb", type=float, default=64.0, help="largest message in MiB (default 64)")
+    p.add_argument("--max-concurrent", type=int, default=256, help="calls in progress before RESOURCE_EXHAUSTED")
+    p.add_argument("--work-workers", type=int, default=2, help="solves run at once (default 2)")
+    p.add_argument("--work-queue", type=int, default=8, help="solves waiting before RESOURCE_EXHAUSTED (default 8)")
+    p.add_argument("--work-seconds", type=float, default=300.0, help="longest a solve may take (default 300)")
+    p.add_argument("--drain-seconds", type=float, default=10.0, help="grace for calls in flight on SIGTERM")
+    p.add_argument("--metrics-port", type=int, help="serve Prometheus metrics on this port (0: a free one)")
+    p.add_argument("--metrics-host", default="127.0.0.1", help="address of the metrics endpoint (default loopback)")
+    p.add_argument("--no-reflection", action="store_true", help="do not serve gRPC server reflection")
+    p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+
+
+def run(args: argparse.Namespace) -> int:
+    from stateworth.errors import QueryError
+    from stateworth.server import ServerConfig, read_secret
+    from stateworth.server import run as serve
+    from stateworth.server.logs import setup
+
+    for opt in ("threads", "max_batch", "max_concurrent", "work_workers"):
+        if getattr(args, opt) < 1:
+            raise QueryError(f"--{opt.replace('_', '-')} must be at least 1 (got {getattr(args, opt)})", field=opt)
+    if args.max_message_mb <= 0:
+        raise QueryError("--max-message-mb must be positive", field="max_message_mb")
+    setup(args.log_level)
+    config = ServerConfig(model_dir=args.model_dir, host=args.host, port=args.port, tls_cert=args.tls_cert,
+                          tls_key=args.tls_key, token=read_secret(args.token_file, "token"),
+                          admin_token=read_secret(args.admin_token_file, "admin token"), threads=args.threads,
+                          max_concurrent=args.max_concurrent, max_message_bytes=int(args.max_message_mb * 2**20),
+                          max_batch=args.max_batch, work_workers=args.work_workers, work_queue=args.work_queue,
+                          work_seconds=args.work_seconds, drain_seconds=args.drain_seconds,
+                          metrics_host=args.metrics_host, metrics_port=args.metrics_port,
+                          reflection=not args.no_reflection)
+    return serve(config)

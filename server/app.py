@@ -1,0 +1,210 @@
+"""Building and running the server: ports, TLS, limits, health, reflection, SIGTERM drain.
+
+Start-up order: listen (health NOT_SERVING), load and solve every artifact of the model
+directory, then SERVING. Health stays NOT_SERVING while no model is loaded (an empty model
+directory is allowed: load one later with the admin LoadModel call). SIGTERM or SIGINT: health
+turns NOT_SERVING, new calls are refused, calls in flight get ``drain_seconds`` to finish, then
+the process exits with status 0.
+"""
+
+from __future__ import annotations
+
+import logging
+import signal
+import threading
+from concurrent import futures
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import grpc
+from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+from grpc_reflection.v1alpha import reflection
+
+from stateworth.errors import StateworthError
+from stateworth.server.interceptors import AccessInterceptor, AuthInterceptor
+from stateworth.server.metrics import Metrics, serve_metrics
+from stateworth.server.service import AdminServicer, Limits, ValuationServicer
+from stateworth.server.store import ModelStore, Snapshot
+from stateworth.server.work import WorkPool
+from stateworth.v1 import admin_service_pb2, admin_service_pb2_grpc, valuation_service_pb2, valuation_service_pb2_grpc
+
+log = logging.getLogger("stateworth.server")
+
+LOOPBACK = ("127.0.0.1", "::1", "localhost")
+SERVICE_NAMES = (valuation_service_pb2.DESCRIPTOR.services_by_name["ValuationService"].full_name,
+                 admin_service_pb2.DESCRIPTOR.services_by_name["ModelAdminService"].full_name)
+
+
+class ConfigError(StateworthError):
+    """A server option is wrong (a file that cannot be read, a TLS half-pair...)."""
+
+
+@dataclass
+class ServerConfig:
+    """Options of ``stateworth serve`` (see ``stateworth serve --help``).
+
+    ``port`` 0 picks a free port (the ``listening`` log line says which). Sizes in bytes,
+    times in seconds."""
+
+    model_dir: str
+    host: str = "127.0.0.1"
+    port: int = 50051
+    tls_cert: str | None = None
+    tls_key: str | None = None
+    token: str | None = None
+    admin_token: str | None = None
+    threads: int = 16
+    max_concurrent: int = 256
+    max_message_bytes: int = 64 * 1024 * 1024
+    max_batch: int = 1_000_000
+    work_workers: int = 2
+    work_queue: int = 8
+    work_cache: int = 256
+    work_seconds: float = 300.0
+    drain_seconds: float = 10.0
+    metrics_host: str = "127.0.0.1"
+    metrics_port: int | None = None
+    reflection: bool = True
+    build: Callable[[Any], Any] | None = field(default=None, repr=False)
+
+
+def read_secret(path: str | None, what: str) -> str | None:
+    """A token file's content (stripped); ConfigError naming the file if unreadable or empty."""
+    if not path:
+        return None
+    try:
+        text = Path(path).read_text().strip()
+    except OSError as e:
+        raise ConfigError(f"cannot read the {what} file ({e.strerror})", where=path) from None
+    if not text:
+        raise ConfigError(f"the {what} file is empty; put the token on its first line", where=path)
+    return text
+
+
+class Server:
+    """A configured, started stateworth server. :meth:`wait` blocks until stopped."""
+
+    def __init__(self, config: ServerConfig) -> None:
+        self.config = config
+        self.metrics = Metrics()
+        self.store = ModelStore(config.model_dir, build=config.build)
+        self.pool = WorkPool(config.work_workers, config.work_queue, config.work_cache, config.work_seconds)
+        self.health = health.HealthServicer()
+        self._stopped = threading.Event()
+        self.port: int | None = None
+        self.metrics_port: int | None = None
+        self._httpd = None
+        opts = [("grpc.max_receive_message_length", config.max_message_bytes),
+                ("grpc.max_send_message_length", config.max_message_bytes),
+                ("grpc.so_reuseport", 0)]
+        self.grpc = grpc.server(futures.ThreadPoolExecutor(max_workers=config.threads, thread_name_prefix="stateworth-rpc"),
+                                interceptors=[AccessInterceptor(self.metrics),
+                                              AuthInterceptor(config.token, config.admin_token)],
+                                options=opts, maximum_concurrent_rpcs=config.max_concurrent)
+        valuation_service_pb2_grpc.add_ValuationServiceServicer_to_server(
+            ValuationServicer(self.store, self.pool, Limits(max_batch=config.max_batch)), self.grpc)
+        admin_service_pb2_grpc.add_ModelAdminServiceServicer_to_server(AdminServicer(self.store, self.metrics),
+                                                                       self.grpc)
+        health_pb2_grpc.add_HealthServicer_to_server(self.health, self.grpc)
+        if config.reflection:
+            reflection.enable_server_reflection(SERVICE_NAMES + (health.SERVICE_NAME, reflection.SERVICE_NAME),
+                                                self.grpc)
+        self.store.listeners.append(self._on_snapshot)
+        self.metrics.gauges["stateworth_models_loaded"] = lambda: len(self.store.snapshot.all())
+        self.metrics.gauges["stateworth_model_generation"] = lambda: self.store.snapshot.generation
+        self.metrics.gauges["stateworth_work_cache_hits_total"] = lambda: self.pool.hits
+        self.metrics.gauges["stateworth_work_cache_misses_total"] = lambda: self.pool.misses
+        self._set_health(False)
+
+    def _set_health(self, serving: bool) -> None:
+        st = health_pb2.HealthCheckResponse.SERVING if serving else health_pb2.HealthCheckResponse.NOT_SERVING
+        for name in ("",) + SERVICE_NAMES:
+            self.health.set(name, st)
+
+    def _on_snapshot(self, snap: Snapshot) -> None:
+        if not self._stopped.is_set():
+            self._set_health(not snap.empty)
+
+    def _bind(self) -> int:
+        c = self.config
+        address = f"[{c.host}]:{c.port}" if ":" in c.host else f"{c.host}:{c.port}"
+        if bool(c.tls_cert) != bool(c.tls_key):
+            raise ConfigError("TLS needs both --tls-cert and --tls-key", where="--tls-cert/--tls-key")
+        if c.tls_cert:
+            try:
+                key, cert = Path(c.tls_key).read_bytes(), Path(c.tls_cert).read_bytes()
+            except OSError as e:
+                raise ConfigError(f"cannot read the TLS file ({e.strerror})", where=e.filename) from None
+            port = self.grpc.add_secure_port(address, grpc.ssl_server_credentials([(key, cert)]))
+        else:
+            if c.host not in LOOPBACK:
+                log.warning("listening beyond loopback without TLS", extra={"fields": {
+                    "event": "insecure_listen", "host": c.host}})
+            port = self.grpc.add_insecure_port(address)
+        if not port:
+            raise ConfigError(f"cannot listen on {address} (in use, or not an address of this machine)",
+                              where="--host/--port")
+        return port
+
+    def start(self, load: bool = True) -> "Server":
+        self.port = self._bind()
+        self.grpc.start()
+        if self.config.metrics_port is not None:
+            try:
+                self._httpd = serve_metrics(self.metrics, self.config.metrics_host, self.config.metrics_port)
+            except OSError as e:
+                self.grpc.stop(0)
+                raise ConfigError(f"cannot serve metrics on {self.config.metrics_host}:{self.config.metrics_port} "
+                                  f"({e.strerror})", where="--metrics-port") from None
+            self.metrics_port = self._httpd.server_port
+        log.info("listening", extra={"fields": {"event": "listening", "host": self.config.host, "port": self.port,
+                                                "tls": bool(self.config.tls_cert), "metrics_port": self.metrics_port,
+                                                "token": self.config.token is not None,
+                                                "admin_token": self.config.admin_token is not None}})
+        if load:
+            try:
+                self.store.reload_all()
+            except StateworthError:
+                self.stop(0)
+                raise
+        log.info("serving", extra={"fields": {"event": "serving", "port": self.port,
+                                              "versions": [f"{s.name}@{s.version}" for s in self.store.snapshot.all()]}})
+        return self
+
+    def stop(self, grace: float | None = None) -> None:
+        """Refuse new calls, let calls in flight finish within ``grace`` seconds, stop."""
+        if self._stopped.is_set():
+            return
+        self._stopped.set()
+        self._set_health(False)
+        g = self.config.drain_seconds if grace is None else grace
+        log.info("draining", extra={"fields": {"event": "draining", "grace_seconds": g}})
+        self.grpc.stop(g).wait()
+        self.pool.shutdown()
+        if self._httpd is not None:
+            self._httpd.shutdown()
+        log.info("stopped", extra={"fields": {"event": "stopped"}})
+
+    def wait(self) -> None:
+        self.grpc.wait_for_termination()
+
+
+def run(config: ServerConfig) -> int:
+    """Serve until SIGTERM/SIGINT, then drain and return 0 (the ``stateworth serve`` command)."""
+    server = Server(config)
+    stop = threading.Event()
+
+    def on_signal(signum, frame) -> None:
+        stop.set()
+
+    prev = {s: signal.signal(s, on_signal) for s in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        server.start()
+        while not stop.wait(0.5):
+            pass
+        server.stop()
+    finally:
+        for s, h in prev.items():
+            signal.signal(s, h)
+    return 0

@@ -1,0 +1,227 @@
+"""The model store: every artifact of the model directory, solved and held in memory.
+
+A *snapshot* maps model name -> version -> :class:`Served` (a solved
+:class:`~stateworth.valuation.Valuer` with its manifest). The store holds one snapshot at a
+time; a request takes the current snapshot once, at its start, and answers from it, so a call in
+flight finishes on the version it started with however many reloads happen meanwhile.
+
+A (re)load builds the next snapshot off to the side (artifacts whose content hash is already
+served are reused, new ones are loaded, verified and solved) and only then replaces the
+reference, one assignment under the reload lock: readers see the old snapshot or the new one,
+never a mixture. Any failure leaves the current snapshot untouched and is reported with the
+artifact and the reason.
+
+The default version of a model (the one that answers requests that pin none) is the version
+whose artifact was written last (manifest modification time; ties by artifact directory name).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from stateworth.errors import StateworthError
+from stateworth.server.errors import LoadError, NotFoundError, UnavailableError, invalid
+
+log = logging.getLogger("stateworth.server")
+
+PREFIX = "models/"
+
+
+@dataclass(frozen=True)
+class Served:
+    """One solved model version. ``valuer`` answers the queries; ``artifact`` is the directory
+    name inside the model directory; ``build_seconds`` the load + solve time."""
+
+    name: str
+    version: str
+    artifact: str
+    valuer: Any
+    manifest: dict
+    diagnostics: dict
+    mtime: float
+    load_time: float
+    build_seconds: float
+
+    @property
+    def resource(self) -> str:
+        return PREFIX + self.name
+
+    @property
+    def content_hash(self) -> str:
+        return self.valuer.model.hash
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """Immutable view of what is served: name -> version -> Served, and each default version."""
+
+    models: dict[str, dict[str, Served]] = field(default_factory=dict)
+    defaults: dict[str, str] = field(default_factory=dict)
+    generation: int = 0
+
+    @property
+    def empty(self) -> bool:
+        return not self.models
+
+    def all(self) -> list[Served]:
+        return [s for name in sorted(self.models) for s in self.models[name].values()]
+
+    def resolve(self, resource: str, version: str = "", field_name: str = "name",
+                version_field: str = "version") -> Served:
+        """The version a request names. INVALID_ARGUMENT for a malformed name, NOT_FOUND for an
+        unknown model or version, UNAVAILABLE while nothing is loaded."""
+        name = parse_name(resource, field_name)
+        if self.empty:
+            raise UnavailableError("no model is loaded yet; retry shortly, or load one with the admin "
+                                   "LoadModel call")
+        versions = self.models.get(name)
+        if versions is None:
+            raise NotFoundError(f"unknown model '{PREFIX}{name}'; models are "
+                                f"{', '.join(PREFIX + n for n in sorted(self.models))}", field=field_name)
+        v = version or self.defaults[name]
+        if v not in versions:
+            raise NotFoundError(f"model '{PREFIX}{name}' has no version '{v}'; versions are "
+                                f"{', '.join(sorted(versions))}", field=version_field)
+        return versions[v]
+
+
+def parse_name(resource: str, field_name: str = "name") -> str:
+    """``"models/{model}"`` -> ``"{model}"`` (INVALID_ARGUMENT naming the field otherwise)."""
+    if not resource:
+        raise invalid("name is required: give the model as models/{model} (see ListModels)", field_name)
+    if not resource.startswith(PREFIX) or len(resource) == len(PREFIX) or "/" in resource[len(PREFIX):]:
+        raise invalid(f"name must be of the form models/{{model}} (got {resource[:80]!r})", field_name)
+    return resource[len(PREFIX):]
+
+
+def _diagnostics(path: Path, manifest: dict) -> dict:
+    """Fit diagnostics stored with an artifact: ``diagnostics.json`` or the manifest metadata."""
+    f = path / "diagnostics.json"
+    doc: Any = None
+    if f.is_file():
+        try:
+            doc = json.loads(f.read_text())
+        except (OSError, ValueError):
+            doc = None
+    if doc is None:
+        doc = (manifest.get("metadata") or {}).get("diagnostics")
+    return doc if isinstance(doc, dict) else {}
+
+
+def artifact_dirs(root: Path) -> list[Path]:
+    """Artifact directories directly inside ``root`` (those holding a manifest.json); names
+    starting with a dot are the temporary directories of writers and are skipped."""
+    if not root.is_dir():
+        raise LoadError(f"model directory {root} does not exist or is not a directory")
+    return sorted(p for p in root.iterdir() if p.is_dir() and not p.name.startswith(".")
+                  and (p / "manifest.json").is_file())
+
+
+class ModelStore:
+    """Holds the current :class:`Snapshot` of ``root`` and swaps it atomically on reloads.
+
+    ``build`` turns a compiled model into its Valuer (default ``Valuer.build``; tests may slow
+    it down to widen the reload window)."""
+
+    def __init__(self, root: str | Path, build: Callable[[Any], Any] | None = None) -> None:
+        self.root = Path(root)
+        self._snapshot = Snapshot()
+        self._reload_lock = threading.Lock()
+        self._build = build
+        self.listeners: list[Callable[[Snapshot], None]] = []
+
+    @property
+    def snapshot(self) -> Snapshot:
+        """The current snapshot (take it once per request)."""
+        return self._snapshot
+
+    # ---- building ---------------------------------------------------------------------------
+    def _load(self, path: Path, reuse: dict[str, Served]) -> Served:
+        from stateworth.rules import load_model, read_manifest
+
+        try:
+            manifest = read_manifest(path)
+            mtime = (path / "manifest.json").stat().st_mtime
+            known = reuse.get(str(manifest.get("hash")))
+            if known is not None and known.artifact == path.name:
+                return known
+            t0 = time.perf_counter()
+            model, _extra = load_model(path)
+            if self._build is not None:
+                valuer = self._build(model)
+            else:
+                from stateworth.valuation import Valuer
+                valuer = Valuer.build(model)
+        except StateworthError as e:
+            raise LoadError(f"artifact '{path.name}' could not be loaded: {e}; the serving models are unchanged",
+                            field="artifact") from None
+        except Exception as e:  # noqa: BLE001 - a bad artifact must never take down the server
+            raise LoadError(f"artifact '{path.name}' could not be loaded ({e.__class__.__name__}); the serving "
+                            "models are unchanged", field="artifact") from None
+        return Served(name=model.name, version=model.version, artifact=path.name, valuer=valuer,
+                      manifest=manifest, diagnostics=_diagnostics(path, manifest), mtime=mtime,
+                      load_time=time.time(), build_seconds=time.perf_counter() - t0)
+
+    @staticmethod
+    def _assemble(served: list[Served], generation: int) -> Snapshot:
+        models: dict[str, dict[str, Served]] = {}
+        for s in served:
+            models.setdefault(s.name, {}).setdefault(s.version, s)
+        defaults = {name: max(vs.values(), key=lambda s: (s.mtime, s.artifact)).version
+                    for name, vs in models.items()}
+        return Snapshot(models=models, defaults=defaults, generation=generation)
+
+    def _swap(self, snap: Snapshot) -> None:
+        self._snapshot = snap
+        for fn in self.listeners:
+            fn(snap)
+
+    # ---- public -----------------------------------------------------------------------------
+    def reload_all(self) -> tuple[Snapshot, int, int, int]:
+        """Rescan the model directory; serve exactly what it holds.
+
+        Returns (snapshot, loaded, kept, dropped). Raises LoadError (snapshot unchanged)."""
+        with self._reload_lock:
+            old = self._snapshot
+            reuse = {s.content_hash: s for s in old.all()}
+            served = [self._load(p, reuse) for p in artifact_dirs(self.root)]
+            kept = sum(1 for s in served if any(s is o for o in reuse.values()))
+            new = self._assemble(served, old.generation + 1)
+            new_keys = {(s.name, s.version) for s in new.all()}
+            dropped = sum(1 for s in old.all() if (s.name, s.version) not in new_keys)
+            self._swap(new)
+            log.info("models reloaded", extra={"fields": {
+                "event": "reload", "generation": new.generation, "loaded": len(served) - kept, "kept": kept,
+                "dropped": dropped, "versions": [f"{s.name}@{s.version}" for s in new.all()]}})
+            return new, len(served) - kept, kept, dropped
+
+    def load_one(self, artifact: str) -> tuple[Served, bool]:
+        """Load (or reload) one artifact directory; other artifacts' versions stay as they are.
+
+        Returns (served, replaced): ``replaced`` when the artifact previously served another
+        version (that version is dropped). Raises LoadError / QueryError (snapshot unchanged)."""
+        if not artifact or "/" in artifact or "\\" in artifact or artifact.startswith("."):
+            raise invalid("artifact must be the name of a directory inside the model directory "
+                          f"(no path separators, not hidden); got {artifact[:80]!r}", "artifact")
+        path = self.root / artifact
+        if not (path / "manifest.json").is_file():
+            raise NotFoundError(f"no artifact '{artifact}' in the model directory (no {artifact}/manifest.json)",
+                                field="artifact")
+        with self._reload_lock:
+            old = self._snapshot
+            reuse = {s.content_hash: s for s in old.all()}
+            s = self._load(path, reuse)
+            others = [o for o in old.all() if o.artifact != artifact]
+            replaced = any(o.artifact == artifact and o.version != s.version for o in old.all())
+            new = self._assemble(others + [s], old.generation + 1)
+            self._swap(new)
+            log.info("model loaded", extra={"fields": {"event": "load", "generation": new.generation,
+                                                       "model": s.name, "version": s.version,
+                                                       "artifact": artifact, "replaced": replaced}})
+            return s, replaced

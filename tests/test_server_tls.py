@@ -1,0 +1,92 @@
+"""TLS and bearer tokens: a server with a self-signed certificate, a query token and an admin
+token. Wrong or missing tokens are UNAUTHENTICATED, the query token on admin calls is
+PERMISSION_DENIED, health stays open, plaintext clients cannot talk to the TLS port."""
+
+from __future__ import annotations
+
+import datetime
+import ipaddress
+
+import pytest
+
+from serving import MODEL, STATE, ServerProcess, write_artifact
+from stateworth.clients import client as cl
+
+
+def _self_signed(tmp):
+    from cryptography import x509
+    from cryptography.hazmat.primitives import hashes, serialization
+    from cryptography.hazmat.primitives.asymmetric import ec
+    from cryptography.x509.oid import NameOID
+
+    key = ec.generate_private_key(ec.SECP256R1())
+    name = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "localhost")])
+    now = datetime.datetime.now(datetime.timezone.utc)
+    cert = (x509.CertificateBuilder().subject_name(name).issuer_name(name).public_key(key.public_key())
+            .serial_number(x509.random_serial_number()).not_valid_before(now - datetime.timedelta(minutes=5))
+            .not_valid_after(now + datetime.timedelta(days=1))
+            .add_extension(x509.SubjectAlternativeName([x509.DNSName("localhost"),
+                                                        x509.IPAddress(ipaddress.ip_address("127.0.0.1"))]),
+                           critical=False)
+            .add_extension(x509.BasicConstraints(ca=True, path_length=None), critical=True)
+            .sign(key, hashes.SHA256()))
+    cert_path, key_path = tmp / "server.pem", tmp / "server.key"
+    cert_path.write_bytes(cert.public_bytes(serialization.Encoding.PEM))
+    key_path.write_bytes(key.private_bytes(serialization.Encoding.PEM, serialization.PrivateFormat.PKCS8,
+                                           serialization.NoEncryption()))
+    return cert_path, key_path
+
+
+@pytest.fixture(scope="module")
+def secure(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("tls")
+    models = tmp / "models"
+    models.mkdir()
+    write_artifact(models, "tiny", seed=0)
+    cert, key = _self_signed(tmp)
+    (tmp / "query.token").write_text("query-secret-1\n")
+    (tmp / "admin.token").write_text("admin-secret-2\n")
+    srv = ServerProcess(models, "--tls-cert", str(cert), "--tls-key", str(key), "--token-file",
+                        str(tmp / "query.token"), "--admin-token-file", str(tmp / "admin.token"))
+    yield srv, cert
+    assert srv.stop() == 0
+    log = "".join(srv.lines)
+    assert "query-secret-1" not in log and "admin-secret-2" not in log
+
+
+def test_tls_with_the_query_token(secure):
+    srv, cert = secure
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="query-secret-1") as c:
+        assert c.value(MODEL, STATE).value.unit == "EUR"
+        assert c.health() == "SERVING"
+
+
+def test_missing_or_wrong_tokens_are_unauthenticated(secure):
+    srv, cert = secure
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert) as c:
+        assert c.health() == "SERVING"  # health is open to probes
+        with pytest.raises(cl.Unauthenticated):
+            c.value(MODEL, STATE)
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="guess") as c:
+        with pytest.raises(cl.Unauthenticated):
+            c.list_models()
+        with pytest.raises(cl.Unauthenticated):
+            c.reload_models()
+
+
+def test_admin_calls_need_the_admin_token(secure):
+    srv, cert = secure
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="query-secret-1") as c:
+        with pytest.raises(cl.PermissionDenied):
+            c.reload_models()
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="query-secret-1", admin_token="admin-secret-2") as c:
+        r = c.reload_models()
+        assert r.kept_count == 1 and r.loaded_count == 0
+        assert c.value(MODEL, STATE).version == r.models[0].version
+
+
+def test_plaintext_client_cannot_use_the_tls_port(secure):
+    srv, _ = secure
+    with cl.Client(srv.target, token="query-secret-1", timeout=3, retries=1, backoff=0.01) as c:
+        with pytest.raises(cl.Unavailable):
+            c.list_models()
