@@ -135,6 +135,31 @@ def _upgrade_moves(spec) -> list[tuple[str, str]]:
     return out
 
 
+def cycle_axes(model) -> list[str]:
+    return [ax.name for ax in model.grid.axes if ax.kind == "cycle"]
+
+
+def pool_marginal(entries: Iterable[Any], pool: Sequence[str]) -> list[dict[str, Any]]:
+    """Marginal entries (:class:`~stateworth.valuation.MarginalEntry`) that differ only in the
+    given axes (of their cells), pooled and ranked by ``|per_point|``.
+
+    Raising a probability by one point in every pooled cell at once changes J, to first order,
+    by the sum of the cells' per-point values; ``probability`` is their mean, with
+    ``probability_range`` and ``cells`` (how many were pooled)."""
+    drop = set(pool)
+    groups: dict[tuple, dict[str, Any]] = {}
+    for e in entries:
+        cell = {k: v for k, v in e.cell.items() if k not in drop}
+        key = (e.axis, tuple(sorted(cell.items())), e.to)
+        g = groups.setdefault(key, {"axis": e.axis, "cell": cell, "to": e.to, "per_point": 0.0, "probs": []})
+        g["per_point"] += float(e.per_point)
+        g["probs"].append(float(e.probability))
+    out = [{"axis": g["axis"], "cell": g["cell"], "to": g["to"], "probability": float(np.mean(g["probs"])),
+            "probability_range": [min(g["probs"]), max(g["probs"])], "cells": len(g["probs"]),
+            "per_point": g["per_point"]} for g in groups.values()]
+    return sorted(out, key=lambda g: -abs(g["per_point"]))
+
+
 def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | None = None,
             top: int = 12, progress: bool = False) -> dict[str, Any]:
     """Everything the page shows, as a JSON-ready dict (money in the model's currency)."""
@@ -257,22 +282,9 @@ def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | 
     # in cycle axes are pooled: raising the probability in every one of those cells at once is
     # worth, to first order, the sum of their per-point values.
     mres = valuer.marginal(pi, stream=stream, top=10**9)
-    cycles = {ax.name for ax in grid.axes if ax.kind == "cycle"}
-    pooled: dict[tuple, dict[str, Any]] = {}
-    for e in mres.entries:
-        cell = {k: v for k, v in e.cell.items() if k not in cycles}
-        key = (e.axis, tuple(sorted(cell.items())), e.to)
-        g = pooled.setdefault(key, {"axis": e.axis, "cell": cell, "to": e.to, "per_point": 0.0, "probs": [],
-                                    "cells": 0})
-        g["per_point"] += e.per_point
-        g["probs"].append(e.probability)
-        g["cells"] += 1
-    ranked = sorted(pooled.values(), key=lambda g: -abs(g["per_point"]))[:top]
-    data["marginal"] = {"objective": float(mres.objective), "pooled_over": sorted(cycles),
-                        "entries": [{"axis": g["axis"], "cell": g["cell"], "to": g["to"],
-                                     "probability": float(np.mean(g["probs"])),
-                                     "probability_range": [float(min(g["probs"])), float(max(g["probs"]))],
-                                     "cells": g["cells"], "per_point": float(g["per_point"])} for g in ranked]}
+    cycles = cycle_axes(model)
+    data["marginal"] = {"objective": float(mres.objective), "pooled_over": cycles,
+                        "entries": pool_marginal(mres.entries, cycles)[:top]}
     step()
     bar.close()
 

@@ -103,3 +103,16 @@ def test_report_refuses_unrelated_folder_and_replaces_old_report(built, tmp_path
     assert not (old / "stale.txt").exists()
     assert json.loads((old / "report.json").read_text())["stream"] == "margin"
     assert not [p for p in old.parent.iterdir() if p.name.startswith(".out.")]
+
+
+def test_pool_marginal_sums_over_cycle_cells_and_ranks():
+    from stateworth.clients.report import pool_marginal
+    from stateworth.valuation import MarginalEntry
+
+    e = [MarginalEntry("status", {"market": "n", "month": m, "status": "lapsed"}, "basic", p, v, 0.0)
+         for m, p, v in (("jan", 0.02, 3.0), ("feb", 0.01, 2.0))]
+    e.append(MarginalEntry("status", {"market": "s", "month": "jan", "status": "lapsed"}, "basic", 0.03, -6.0, 0.0))
+    pooled = pool_marginal(e, ["month"])
+    assert [(g["cell"]["market"], g["cells"], g["per_point"]) for g in pooled] == [("s", 1, -6.0), ("n", 2, 5.0)]
+    assert pooled[1]["probability_range"] == [0.01, 0.02] and "month" not in pooled[1]["cell"]
+    assert len(pool_marginal(e, [])) == 3

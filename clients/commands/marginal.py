@@ -23,6 +23,9 @@ example:
 def add_arguments(p: argparse.ArgumentParser) -> None:
     c.add_model_argument(p)
     p.add_argument("--top", type=int, default=15, help="how many entries to list (default 15)")
+    p.add_argument("--per-cycle", action="store_true",
+                   help="list each calendar cell separately (default: entries that differ only in a cycle "
+                        "axis such as month are pooled: +1 point in all of them at once)")
     c.add_cohort_arguments(p)
     c.add_stream_arguments(p, horizon=False)
 
@@ -37,16 +40,29 @@ def run(args: argparse.Namespace) -> int:
     stream = c.default_stream(valuer, args.stream)
     selection = c.parse_selection(args.cohort)
     weights = c.cohort_weights(valuer, selection, args.basis)
-    res = valuer.marginal(weights, stream=stream, top=args.top)
+    from stateworth.clients.report import cycle_axes, pool_marginal
+
+    pool = [] if args.per_cycle else cycle_axes(valuer.model)
+    res = valuer.marginal(weights, stream=stream, top=10**9 if pool else args.top)
+    entries = pool_marginal(res.entries, pool)[:args.top]
     if args.json:
-        c.print_json(res.to_dict())
+        doc = res.to_dict()
+        doc["entries"] = entries
+        doc["pooled_over"] = pool
+        c.print_json(doc)
         return 0
     print(c.header(valuer, stream))
     print(f"cohort: {c.describe_state({k: ','.join(v) for k, v in selection.items()}) or 'every state'} "
           f"({args.basis} weights); cohort value J = {money(res.objective)} {res.unit} per customer")
-    rows = [[i + 1, f"P({e.axis}'={e.to} | {c.describe_state(e.cell)})", f"{e.probability:.4f}",
-             money(e.per_point)] for i, e in enumerate(res.entries)]
-    print_table(["rank", "transition", "probability", f"per +1 point ({res.unit})"], rows)
-    print("per +1 point: change of J when that probability rises by 0.01 in every state of the cell.")
+
+    def prob(e):
+        lo, hi = e["probability_range"]
+        return f"{lo:.4f}" if hi - lo < 5e-5 else f"{lo:.4f}-{hi:.4f}"
+
+    rows = [[i + 1, f"P({e['axis']}'={e['to']} | {c.describe_state(e['cell'])})", prob(e), e["cells"],
+             money(e["per_point"])] for i, e in enumerate(entries)]
+    print_table(["rank", "transition", "probability", "cells", f"per +1 point ({res.unit})"], rows)
+    print("per +1 point: change of J when that probability rises by 0.01 in every state of the cell"
+          + (f" (and in every {', '.join(pool)} at once)" if pool else "") + ".")
     print(c.CAUTION_LINE)
     return 0
