@@ -29,7 +29,7 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
     target = tol * bnorm
 
     def cycle(state):
-        x, it, applies, _, _ = state
+        x, it, applies, prev, _ = state
         r = b - matvec(x)
         beta0 = jnp.linalg.norm(r)
         V = jnp.zeros((m + 1, n)).at[0].set(r / jnp.where(beta0 > 0, beta0, 1.0))
@@ -87,7 +87,9 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
         y = jax.scipy.linalg.solve_triangular(Rm, gy, lower=False)
         x = x + precond(V[:m].T @ y)
         res = jnp.max(jnp.abs(b - matvec(x))) / bnorm
-        return x, it + it_in, applies + (it_in + 1) * (1 + precond_cost) + 1, res, brk & (j == 0)
+        # a full cycle that gains less than 10 % has hit the rounding floor: stop, say so
+        stuck = (brk & (j == 0)) | ((j == m) & (res > 0.9 * prev))
+        return x, it + it_in, applies + (it_in + 1) * (1 + precond_cost) + 1, res, stuck
 
     def outer_cond(state):
         x, it, applies, res, stuck = state
@@ -97,7 +99,7 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
     x, it, applies, res, stuck = jax.lax.while_loop(outer_cond, cycle, (x0, 0, 1, r0, False))
     status = jnp.where(res <= tol, Status.CONVERGED,
                        jnp.where(~jnp.isfinite(res), Status.NONFINITE,
-                                 jnp.where(stuck, Status.BREAKDOWN, Status.MAX_ITERATIONS)))
+                                 jnp.where(stuck, Status.STAGNATED, Status.MAX_ITERATIONS)))
     return x, it, applies, res, status.astype(jnp.int32)
 
 

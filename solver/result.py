@@ -17,6 +17,7 @@ class Status(IntEnum):
     MAX_ITERATIONS = 1
     BREAKDOWN = 2
     NONFINITE = 3
+    STAGNATED = 4
 
 
 @dataclass
@@ -64,7 +65,9 @@ class Solution:
         if self.status != Status.CONVERGED:
             what = {Status.MAX_ITERATIONS: "ran out of iterations",
                     Status.BREAKDOWN: "broke down (the system may be singular: beta = 1 needs a sub-stochastic P)",
-                    Status.NONFINITE: "produced non-finite values (check rewards and beta)"}[self.status]
+                    Status.NONFINITE: "produced non-finite values (check rewards and beta)",
+                    Status.STAGNATED: "stagnated (a restart cycle no longer reduced the residual: the "
+                                      "float64 rounding floor of this system is above the tolerance)"}[self.status]
             raise ConvergenceError(
                 f"{self.method} solver {what} after {self.iterations} iterations with relative residual "
                 f"{self.residual:.3g} (asked for {tol:.3g}); raise max_iter, loosen tol, or try method='value_iteration'",
