@@ -44,12 +44,16 @@ def bandwidth_gbps() -> float:
     return float(out.stdout.strip())
 
 
-def run_one(size: str, solver: str, csr: str | None, timeout: float) -> dict:
+def run_one(size: str, solver: str, csr: str | None, timeout: float, devices: int | None = None) -> dict:
     cmd = [sys.executable, str(HERE / "solve_one.py"), "--size", size, "--solver", solver]
+    env = dict(os.environ)
     if csr:
         cmd += ["--csr", csr]
+    if devices:
+        cmd += ["--devices", str(devices)]
+        env["XLA_FLAGS"] = f"--xla_force_host_platform_device_count={devices}"
     try:
-        out = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, check=True)
+        out = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout, check=True, env=env)
     except subprocess.TimeoutExpired:
         return {"solver": solver, "skipped": f"timed out after {timeout:.0f} s"}
     except subprocess.CalledProcessError as e:
@@ -61,7 +65,9 @@ def main() -> None:
     import models
 
     ap = argparse.ArgumentParser()
-    ap.add_argument("--sizes", default=",".join(models.SIZES))
+    ap.add_argument("--sizes", default=",".join(models.DEFAULT))
+    ap.add_argument("--devices", type=int, default=2,
+                    help="also solve the two largest sizes sharded over this many forced host devices")
     ap.add_argument("--skip-others", action="store_true", help="run only the solve benchmark")
     args = ap.parse_args()
     OUT.mkdir(parents=True, exist_ok=True)
@@ -79,6 +85,16 @@ def main() -> None:
         rows.append(sw)
         print(f"  stateworth       {sw.get('seconds', float('nan')):9.3f} s  residual {sw.get('rel_residual', float('nan')):.1e}  "
               f"applies {sw.get('operator_applies')}  rss {sw.get('peak_rss_mb', 0):.0f} MB", flush=True)
+        if args.devices and args.devices > 1 and size in sizes[-2:]:
+            sh = run_one(size, "stateworth", None, 900, devices=args.devices)
+            sh.setdefault("states", n)
+            rows.append(sh)
+            if "seconds" in sh:
+                print(f"  {sh['solver']:<16} {sh['seconds']:9.3f} s  residual {sh['rel_residual']:.1e}  "
+                      f"applies {sh['operator_applies']}  rss {sh['peak_rss_mb']:.0f} MB "
+                      f"({sw.get('seconds', float('nan')) / sh['seconds']:.2f}x the single-device run)", flush=True)
+            else:
+                print(f"  stateworth_{args.devices}dev {sh['skipped']}", flush=True)
         csr = str(OUT / f"csr-{size}.npz")
 
         def est(name: str) -> float:

@@ -39,6 +39,8 @@ def main() -> None:
     ap.add_argument("--size", required=True)
     ap.add_argument("--solver", required=True,
                     choices=["stateworth", "spsolve", "gmres", "bicgstab", "power", "build_csr"])
+    ap.add_argument("--devices", type=int, default=None,
+                    help="stateworth only: shard over this many devices (set XLA_FLAGS for host devices)")
     ap.add_argument("--csr", default=None)
     args = ap.parse_args()
 
@@ -62,9 +64,9 @@ def main() -> None:
         from stateworth.solver import solve
         m = models.build(args.size)
         t0 = time.perf_counter()
-        first = solve(m, "revenue", method="gmres", tol=TOL)
+        first = solve(m, "revenue", method="gmres", tol=TOL, devices=args.devices)
         compile_s = time.perf_counter() - t0
-        sol = solve(m, "revenue", method="gmres", tol=TOL)
+        sol = solve(m, "revenue", method="gmres", tol=TOL, devices=args.devices)
         secs = sol.seconds
         v = sol.value("revenue")
         r = m.rewards["revenue"]
@@ -79,7 +81,8 @@ def main() -> None:
             mv(x).block_until_ready()
             ts.append(time.perf_counter() - t1)
         table_bytes = sum(t.size * 8 for t in m.tables.values())
-        row = {"states": m.n_states, "solver": "stateworth", "seconds": secs, "rel_residual": resid,
+        name = "stateworth" if args.devices is None else f"stateworth_{args.devices}dev"
+        row = {"states": m.n_states, "solver": name, "seconds": secs, "rel_residual": resid,
                "peak_rss_mb": peak_rss_mb(), "operator_applies": sol.operator_applies,
                "iterations": sol.iterations, "compile_seconds": compile_s - secs if compile_s > secs else compile_s,
                "first_call_seconds": first.seconds, "apply_seconds": min(ts),
