@@ -22,6 +22,7 @@ import logging
 import threading
 import time
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any, Callable
 
@@ -33,7 +34,7 @@ log = logging.getLogger("stateworth.server")
 PREFIX = "models/"
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Served:
     """One solved model version. ``valuer`` answers the queries; ``artifact`` is the directory
     name inside the model directory; ``build_seconds`` the load + solve time."""
@@ -51,6 +52,58 @@ class Served:
     @property
     def resource(self) -> str:
         return PREFIX + self.name
+
+    @cached_property
+    def _index(self) -> tuple[tuple[str, ...], tuple[dict[str, int], ...], tuple[int, ...]]:
+        grid = self.valuer.model.grid
+        strides = []
+        acc = 1
+        for size in reversed(grid.shape):
+            strides.append(acc)
+            acc *= size
+        return (grid.names, tuple({lv: i for i, lv in enumerate(a.levels)} for a in grid.axes),
+                tuple(reversed(strides)))
+
+    @cached_property
+    def _columns(self) -> dict[str, Any]:
+        return {}
+
+    @cached_property
+    def _units(self) -> dict[str, str]:
+        return {}
+
+    def column(self, stream: str):
+        """V of every state for ``stream`` (infinite horizon) as one ``(n,)`` array, looked up
+        once through the valuation layer and kept (the hot path of single-value calls)."""
+        col = self._columns.get(stream)
+        if col is None:
+            import numpy as np
+            col = self.valuer.values(np.arange(self.valuer.model.n_states), stream)
+            self._columns[stream] = col
+        return col
+
+    def unit(self, stream: str) -> str:
+        """Unit of ``stream`` (QueryError naming the streams when unknown); remembered."""
+        units = self._units
+        u = units.get(stream)
+        if u is None:
+            u = units[stream] = self.valuer.unit(stream)
+        return u
+
+    def quick_index(self, coords: dict[str, str]) -> int | None:
+        """Flat index of a full coordinate given by level names, or None when anything is off
+        (the caller then asks the valuation layer, whose error names the axis or level). The
+        hot path of single-value calls: plain dictionary lookups, no arrays."""
+        names, lookups, strides = self._index
+        if len(coords) != len(names):
+            return None
+        i = 0
+        for name, lookup, stride in zip(names, lookups, strides):
+            code = lookup.get(coords.get(name, None))  # type: ignore[arg-type]
+            if code is None:
+                return None
+            i += code * stride
+        return i
 
     @property
     def content_hash(self) -> str:
