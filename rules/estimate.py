@@ -55,8 +55,10 @@ def parent_mean(counts: np.ndarray, allowed: np.ndarray) -> np.ndarray:
     axis), falling back to coarser pools and finally the even spread over allowed moves."""
     k = counts.ndim - 1
     m = allowed / allowed.sum(axis=-1, keepdims=True)
-    for j in range(k):  # keep the first j given axes, pool the rest; finer pools override
-        pooled = counts.sum(axis=tuple(range(j, k)), keepdims=True) if k > j else counts
+    # pooling over a single-level axis would make a cell its own parent: skip those axes
+    real = [i for i in range(k) if counts.shape[i] > 1]
+    for j in range(len(real)):  # pool the given axes real[j:]; finer pools override coarser
+        pooled = counts.sum(axis=tuple(real[j:]), keepdims=True)
         cand = np.broadcast_to(pooled, counts.shape) * allowed
         tot = cand.sum(axis=-1, keepdims=True)
         m = np.where(tot > 0, cand / np.where(tot > 0, tot, 1.0), m)
