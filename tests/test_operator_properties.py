@@ -1,0 +1,298 @@
+"""Property tests of the compiler on random small specs (hypothesis).
+
+Each example draws a spec dict (1-2 fixed axes, 0-2 counters with random ``advance_while`` and
+``reset_on``, 0-1 cycle, the status axis with a random member split and random ``moves`` /
+``not_sold`` rules, 0-2 chance axes with random ``given`` including ``next.X`` of axes drawn
+earlier) and random factor tables that respect the move masks. Then:
+
+* the structured operator ``P x`` equals the explicit CSR matrix times ``x`` (one vector and a
+  block of vectors), and the transpose apply equals ``P^T y``;
+* every row of P sums to 1;
+* every non-zero of P obeys the rules, checked on the grid coordinates of its row and column
+  with the rules re-derived here from the spec dict (not from the compiler's masks or index
+  maps): allowed moves, not_sold plans, fixed axes unchanged, counters ageing as declared,
+  cycles advancing modulo their length.
+
+Grids stay under ~400 states. A jitted apply recompiles for every new grid shape, so each
+example compiles one function holding both the apply and the transpose apply (one vector each);
+blocks of vectors ``(n, k)`` are checked once, on a fixed spec, in
+:func:`test_block_apply_matches_csr`.
+"""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from stateworth.rules import compile_model, parse_spec
+from stateworth.rules.factors import factors_of, masked_uniform
+
+MAX_STATES = 400
+SETTINGS = settings(max_examples=25, deadline=None, derandomize=True,
+                    suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+
+
+def _names(prefix: str, k: int) -> list[str]:
+    return [f"{prefix}{i}" for i in range(k)]
+
+
+@st.composite
+def specs(draw):
+    """A random valid spec dict, plus a seed for its tables."""
+    n_fixed = draw(st.integers(1, 2))
+    n_counter = draw(st.integers(0, 2))
+    n_cycle = draw(st.integers(0, 1))
+    n_chance = draw(st.integers(0, 2))
+    sizes = {
+        "fixed": [draw(st.integers(1, 3)) for _ in range(n_fixed)],
+        "counter": [draw(st.integers(2, 4)) for _ in range(n_counter)],
+        "cycle": [draw(st.integers(2, 3)) for _ in range(n_cycle)],
+        "status": [draw(st.integers(2, 4))],
+        "chance": [draw(st.integers(2, 3)) for _ in range(n_chance)],
+    }
+
+    # shrink the largest axis until the grid is small (deterministic, so shrinking stays stable)
+    def total():
+        return int(np.prod([s for v in sizes.values() for s in v]))
+
+    while total() > MAX_STATES:
+        kind, i = max(((k, j) for k, v in sizes.items() for j in range(len(v))),
+                      key=lambda kj: sizes[kj[0]][kj[1]])
+        sizes[kind][i] -= 1
+
+    axes: dict[str, dict] = {}
+    fixed_names = [f"f{i}" for i in range(n_fixed)]
+    for name, k in zip(fixed_names, sizes["fixed"]):
+        axes[name] = {"kind": "fixed", "levels": _names(f"{name}_", k)}
+
+    s_levels = _names("s", sizes["status"][0])
+    n_members = draw(st.integers(1, len(s_levels) - 1))
+    member_idx = draw(st.permutations(range(len(s_levels))))[:n_members]
+    members = [s_levels[i] for i in sorted(member_idx)]
+    non_members = [lv for lv in s_levels if lv not in members]
+
+    counter_names = [f"c{i}" for i in range(n_counter)]
+    for name, k in zip(counter_names, sizes["counter"]):
+        ax: dict = {"kind": "counter", "size": k}
+        aw = draw(st.sampled_from(["member", "non_member", "always", "list", "omit"]))
+        if aw == "list":
+            ax["advance_while"] = draw(st.lists(st.sampled_from(s_levels), unique=True, max_size=len(s_levels)))
+        elif aw != "omit":
+            ax["advance_while"] = aw
+        reset = draw(st.lists(st.sampled_from(["join", "lapse", "change"]), unique=True, max_size=3))
+        if reset or draw(st.booleans()):
+            ax["reset_on"] = reset
+        axes[name] = ax
+    cycle_names = [f"y{i}" for i in range(n_cycle)]
+    for name, k in zip(cycle_names, sizes["cycle"]):
+        axes[name] = ({"kind": "cycle", "size": k} if draw(st.booleans())
+                      else {"kind": "cycle", "levels": _names(f"{name}_", k)})
+
+    chance_names = [f"e{i}" for i in range(n_chance)]
+    random_names = ["status"] + chance_names
+    order = list(draw(st.permutations(random_names)))
+    current_axes = fixed_names + counter_names + cycle_names + random_names
+
+    def draw_given(name: str, must: list[str]) -> list[str]:
+        earlier = order[: order.index(name)]
+        pool = current_axes + [f"next.{a}" for a in earlier]
+        picked = draw(st.lists(st.sampled_from(pool), unique=True, max_size=3))
+        return list(dict.fromkeys(must + picked))
+
+    # status: moves from some levels (always keeping a non-member level open, so that no cell is
+    # left without an allowed next level), not_sold for some plans in some fixed levels
+    s_moves = {}
+    for frm in s_levels:
+        if draw(st.booleans()):
+            keep = draw(st.sampled_from(non_members))
+            extra = draw(st.lists(st.sampled_from(s_levels), unique=True, max_size=len(s_levels)))
+            s_moves[frm] = list(dict.fromkeys([keep] + extra))
+    not_sold = {}
+    for plan in members:
+        if draw(st.booleans()):
+            fax = draw(st.sampled_from(fixed_names))
+            flv = axes[fax]["levels"]
+            chosen = draw(st.lists(st.sampled_from(flv), unique=True, min_size=1, max_size=len(flv)))
+            not_sold[plan] = {fax: chosen}
+    must = (["status"] if s_moves else []) + list(dict.fromkeys(f for r in not_sold.values() for f in r))
+    status_ax: dict = {"kind": "status", "levels": s_levels, "members": members,
+                       "given": draw_given("status", must)}
+    if s_moves:
+        status_ax["moves"] = s_moves
+    if not_sold:
+        status_ax["not_sold"] = not_sold
+    axes["status"] = status_ax
+
+    for name, k in zip(chance_names, sizes["chance"]):
+        lv = _names(f"{name}_", k)
+        moves = {}
+        for frm in lv:
+            if draw(st.booleans()):
+                moves[frm] = draw(st.lists(st.sampled_from(lv), unique=True, min_size=1, max_size=k))
+        ax = {"kind": "chance", "levels": lv, "given": draw_given(name, [name] if moves else [])}
+        if moves:
+            ax["moves"] = moves
+        axes[name] = ax
+
+    model = {"name": "random", "discount": {"annual_rate": 0.1}}
+    if order != random_names or draw(st.booleans()):
+        model["draw_order"] = order
+    # dict order of axes is shuffled too: grid order must not depend on it
+    names = list(axes)
+    shuffled = draw(st.permutations(names))
+    spec = {"model": model, "axes": {n: axes[n] for n in shuffled}}
+    return spec, draw(st.integers(0, 2**31 - 1))
+
+
+def random_tables(spec, seed: int) -> dict[str, np.ndarray]:
+    """Tables that respect the masks: the masked uniform table perturbed, with some allowed
+    entries zeroed (keeping one per row), renormalised."""
+    rng = np.random.default_rng(seed)
+    out = {}
+    for f in factors_of(spec):
+        allowed = masked_uniform(spec, f) > 0
+        t = rng.uniform(0.05, 1.0, size=f.shape) * allowed
+        drop = rng.uniform(size=f.shape) < 0.3
+        # keep the largest allowed entry of each row so that no row becomes empty
+        keep = t == t.max(axis=-1, keepdims=True)
+        t = np.where(drop & ~keep, 0.0, t)
+        out[f.axis] = t / t.sum(axis=-1, keepdims=True)
+    return out
+
+
+def _counter_next(ax: dict, size: int, c: int, s_from: str, s_to: str, members: list[str]) -> int:
+    """The declared ageing, restated from the spec dict: reset to 0 on a named event
+    (join: non-member -> member, lapse: member -> non-member, change: any status change);
+    otherwise +1, capped at the last level, while the next status satisfies advance_while."""
+    was, now = s_from in members, s_to in members
+    events = set()
+    if not was and now:
+        events.add("join")
+    if was and not now:
+        events.add("lapse")
+    if s_from != s_to:
+        events.add("change")
+    if events & set(ax.get("reset_on", [])):
+        return 0
+    aw = ax.get("advance_while", "always")
+    if aw == "always":
+        adv = True
+    elif aw == "member":
+        adv = now
+    elif aw == "non_member":
+        adv = not now
+    else:
+        adv = s_to in aw
+    return min(c + 1, size - 1) if adv else c
+
+
+def _check_rules(spec_dict: dict, model, P) -> None:
+    grid = model.grid
+    axes = spec_dict["axes"]
+    members = axes["status"]["members"]
+    coo = P.tocoo()
+    rows, cols = coo.row, coo.col
+    cur = dict(zip(grid.names, np.unravel_index(rows, grid.shape)))
+    nxt = dict(zip(grid.names, np.unravel_index(cols, grid.shape)))
+    for a in grid.axes:
+        ax = axes[a.name]
+        i, j = cur[a.name], nxt[a.name]
+        if a.kind == "fixed":
+            np.testing.assert_array_equal(i, j, err_msg=f"fixed axis {a.name} changed")
+        elif a.kind == "cycle":
+            np.testing.assert_array_equal(j, (i + 1) % a.size, err_msg=f"cycle {a.name}")
+        elif a.kind == "counter":
+            s_lv = grid.axis("status").levels
+            want = [_counter_next(ax, a.size, int(c), s_lv[s0], s_lv[s1], members)
+                    for c, s0, s1 in zip(i, cur["status"], nxt["status"])]
+            np.testing.assert_array_equal(j, want, err_msg=f"counter {a.name}")
+        if a.kind in ("status", "chance"):
+            for frm, tos in ax.get("moves", {}).items():
+                sel = i == a.levels.index(frm)
+                allowed = np.isin(j[sel], [a.levels.index(t) for t in tos])
+                assert allowed.all(), f"{a.name}: mass on a move from {frm} outside {tos}"
+    s_lv = grid.axis("status").levels
+    for plan, rule in axes["status"].get("not_sold", {}).items():
+        for fax, flevels in rule.items():
+            f_lv = grid.axis(fax).levels
+            bad = (nxt["status"] == s_lv.index(plan)) & np.isin(cur[fax], [f_lv.index(x) for x in flevels])
+            assert not bad.any(), f"mass on {plan}, not sold in {fax} {flevels}"
+
+
+@jax.jit
+def _both(op, x, y):
+    return op.mv(x), op.transpose().mv(y)
+
+
+@SETTINGS
+@given(specs())
+def test_operator_matches_csr_and_obeys_rules(case):
+    spec_dict, seed = case
+    spec = parse_spec(spec_dict)
+    model = compile_model(spec, random_tables(spec, seed))
+    n = model.n_states
+    assert n <= MAX_STATES
+    P = model.csr()
+    assert P.shape == (n, n)
+    rng = np.random.default_rng(seed)
+    x, y = rng.normal(size=n), rng.normal(size=n)
+    px, pty = _both(model.operator, jnp.asarray(x), jnp.asarray(y))
+    np.testing.assert_allclose(np.asarray(px), P @ x, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(np.asarray(pty), P.T @ y, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(np.asarray(P.sum(axis=1)).ravel(), 1.0, rtol=0, atol=1e-12)
+    assert P.data.min() > 0.0
+    _check_rules(spec_dict, model, P)
+
+
+@SETTINGS
+@given(specs())
+def test_grid_order_and_level_index_round_trip(case):
+    """Grid order is fixed, then counters and cycles, then random axes in draw order; a flat
+    index and its coordinates convert both ways."""
+    spec_dict, _ = case
+    spec = parse_spec(spec_dict)
+    from stateworth.rules import Grid
+    grid = Grid.from_spec(spec)
+    kinds = [a.kind for a in grid.axes]
+    rank = {"fixed": 0, "counter": 1, "cycle": 1, "status": 2, "chance": 2}
+    assert [rank[k] for k in kinds] == sorted(rank[k] for k in kinds)
+    assert [a.name for a in grid.axes if a.kind in ("status", "chance")] == spec.draw_order
+    for flat in range(0, grid.size, max(1, grid.size // 7)):
+        assert grid.flat_index(grid.coords(flat)) == flat
+
+
+SMALL = {
+    "model": {"name": "t", "discount": {"annual_rate": 0.1}},
+    "axes": {"m": {"kind": "fixed", "levels": ["a", "b"]},
+             "age": {"kind": "counter", "size": 3, "advance_while": "member", "reset_on": ["join"]},
+             "status": {"kind": "status", "levels": ["out", "p", "q"], "members": ["p", "q"],
+                        "given": ["status", "m"], "moves": {"out": ["out", "p"]},
+                        "not_sold": {"q": {"m": ["b"]}}},
+             "e": {"kind": "chance", "levels": ["lo", "hi"], "given": ["next.status", "age"]}}}
+
+
+def test_block_apply_matches_csr():
+    """``mv`` on ``(n, k)`` applies P (and P^T) to each column."""
+    spec = parse_spec(SMALL)
+    model = compile_model(spec, random_tables(spec, 11))
+    P = model.csr()
+    X = np.random.default_rng(0).normal(size=(model.n_states, 3))
+    np.testing.assert_allclose(np.asarray(model.operator.mv(jnp.asarray(X))), P @ X, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(np.asarray(model.operator.transpose().mv(jnp.asarray(X))), P.T @ X,
+                               rtol=0, atol=1e-12)
+
+
+def test_random_tables_are_accepted_and_forbidden_mass_is_not():
+    """The generator's tables pass check_table, and moving mass onto a forbidden move fails."""
+    from stateworth.errors import SpecError
+    spec = parse_spec(SMALL)
+    tables = random_tables(spec, 3)
+    compile_model(spec, tables)
+    bad = tables["status"].copy()
+    bad[0, 0] = [0.5, 0.25, 0.25]  # m=a, status=out -> q is not an allowed move
+    with pytest.raises(SpecError, match=r"axes\.status\.table.*forbid.*status=out.*next status=q"):
+        compile_model(spec, {"status": bad})
