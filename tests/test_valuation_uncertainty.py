@@ -69,7 +69,7 @@ def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
     spec = tiny_spec(markets=2, tenure=3)
     t = tiny_tables(spec, seed=2)
     model = compile_model(spec, t, draws=dirichlet_draws(t, 6, seed=5), source="mid")
-    v = Valuer.build(model, tol=1e-10)
+    v = Valuer.build(model, tol=1e-10, chunk=4)  # 6 draws, vectorised 4 at a time
     assert v.has_intervals and v.n_draws == 6 and v.draw_stats["method"] == "gmres"
     for d in (0, 5):
         md = model.with_tables({a: model.draws[a][d] for a in model.draws})

@@ -44,7 +44,10 @@ def index_many(grid, columns: Mapping[str, Sequence[Any]]) -> np.ndarray:
                          "state on every axis", field="columns")
     codes = []
     for ax in grid.axes:
-        col = np.asarray(columns[ax.name])
+        raw = columns[ax.name]
+        col = np.asarray(raw, dtype=object) if isinstance(raw, (list, tuple)) else np.asarray(raw)
+        if col.dtype.kind == "O" and len(col) and isinstance(col[0], (int, np.integer)):
+            col = col.astype(np.int64)
         if col.dtype.kind in "iu":
             bad = (col < 0) | (col >= ax.size)
             if bad.any():
@@ -52,14 +55,26 @@ def index_many(grid, columns: Mapping[str, Sequence[Any]]) -> np.ndarray:
                                  field=ax.name)
             codes.append(col.astype(np.int64))
             continue
-        lookup = {lv: i for i, lv in enumerate(ax.levels)}
-        uniq, inv = np.unique(col.astype(str), return_inverse=True)
-        mapped = np.empty(len(uniq), dtype=np.int64)
-        for j, u in enumerate(uniq):
-            if u not in lookup:
-                raise QueryError(f"'{u}' is not a level of {ax.name}; levels are {', '.join(ax.levels)}", field=ax.name)
-            mapped[j] = lookup[u]
-        codes.append(mapped[inv.reshape(-1)])
+        if col.dtype.kind == "O":  # Python strings: one dict lookup each beats converting them
+            lookup = {lv: i for i, lv in enumerate(ax.levels)}
+            got = np.fromiter((lookup.get(x, -1) for x in col), dtype=np.int64, count=len(col))
+            if (got < 0).any():
+                raise QueryError(f"'{col[got < 0][0]}' is not a level of {ax.name}; levels are "
+                                 f"{', '.join(ax.levels)}", field=ax.name)
+            codes.append(got)
+            continue
+        # fixed-width strings: binary search in the sorted levels, vectorised
+        names = np.asarray(ax.levels)
+        order = np.argsort(names)
+        sorted_names = names[order]
+        col = col.astype(sorted_names.dtype if col.dtype.kind == "U" and col.dtype.itemsize <= sorted_names.dtype.itemsize
+                         else str)
+        pos = np.minimum(np.searchsorted(sorted_names, col), len(names) - 1)
+        bad = sorted_names[pos] != col
+        if bad.any():
+            raise QueryError(f"'{col[bad][0]}' is not a level of {ax.name}; levels are {', '.join(ax.levels)}",
+                             field=ax.name)
+        codes.append(order[pos].astype(np.int64))
     return np.ravel_multi_index(codes, grid.shape).astype(np.int64)
 
 

@@ -77,8 +77,9 @@ class Valuer:
         With ``draws`` and a non-empty ``model.draws`` ({axis: (D, *table shape)}), also solve
         the D drawn models (each draw replaces the tables of the axes it names) in one batched
         computation, ``chunk`` draws vectorised at a time (default: as many as memory allows),
-        warm-started from the point solution and sharing its preconditioner. Raises QueryError on
-        an unknown stream or draws of the wrong shape."""
+        warm-started from the point solution and sharing its preconditioner (see
+        :func:`.draws.solve_draws`). Raises QueryError on an unknown stream or draws of the wrong
+        shape."""
         names = tuple(model.rewards) if streams is None else tuple(streams)
         if not names:
             raise QueryError("no reward stream to solve", field="streams")

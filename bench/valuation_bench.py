@@ -1,0 +1,165 @@
+"""Valuation benchmark: the figures of issue 5 at 3.6 x 10^5 states (bench/models.py "360k").
+
+Model: market fixed (12 levels), tenure counter (60), status (prospect, lapsed, 3 plans),
+engagement chance (5), propensity band chance (20); random but persistent tables (monthly churn
+of a few per cent, joins below 2 %). Reports, each after one warm-up call so that JAX compile
+time is excluded (and reported separately where it matters):
+
+* cached value lookup: seconds per million states (flat indices), and per million coordinates
+  given as level names (names -> indices -> values);
+* adjoint solve (I - beta P^T) lambda = mu against a cold forward solve of the revenue stream;
+* exact transition change (+3 points on the engagement up-move of one plan's members) with the
+  warm start from the cached values, against a cold solve of the changed model (goal < 1/4);
+* the 200-draw interval (all draws in one batched computation) against 200 separate solves;
+  the separate solves are timed on ``--separate`` draws and scaled to 200 (said so in the output).
+
+Writes bench/out/valuation.json (temp file, then rename). Run: .venv/bin/python bench/valuation_bench.py
+Options: --size 10k for a quick run, --draws, --separate, --batch.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE))
+
+from models import build  # noqa: E402
+
+from stateworth.solver import solve  # noqa: E402
+from stateworth.valuation import TransitionChange, Valuer  # noqa: E402
+
+
+def dirichlet_draws(tables: dict, D: int, conc: float, seed: int) -> dict:
+    """D draws per table, each row ~ Dirichlet(conc * row) on its positive entries (a stand-in
+    for a fitted posterior with about ``conc`` observed transitions per cell)."""
+    rng = np.random.default_rng(seed)
+    out = {}
+    for a, t in tables.items():
+        g = np.where(t > 0, rng.gamma(np.where(t > 0, conc * t, 1.0), size=(D,) + t.shape), 0.0)
+        out[a] = g / g.sum(axis=-1, keepdims=True)
+    return out
+
+
+def timed(f, repeat: int = 1):
+    best, out = float("inf"), None
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        out = f()
+        best = min(best, time.perf_counter() - t0)
+    return best, out
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--size", default="360k")
+    ap.add_argument("--draws", type=int, default=200)
+    ap.add_argument("--separate", type=int, default=5)
+    ap.add_argument("--batch", type=int, default=None, help="draws vectorised at a time (default: by memory)")
+    ap.add_argument("--conc", type=float, default=2000.0)
+    ap.add_argument("--out", default=str(HERE / "out" / "valuation.json"))
+    a = ap.parse_args()
+    res: dict = {"size": a.size, "draws": a.draws, "cpu_count": os.cpu_count()}
+
+    t0 = time.perf_counter()
+    model = build(a.size)
+    res["states"] = model.n_states
+    res["compile_model_seconds"] = time.perf_counter() - t0
+    print(f"model: {model.n_states:,} states", flush=True)
+
+    # --- point build and lookups
+    t_first, v = timed(lambda: Valuer.build(model, streams=["revenue"], draws=False))
+    t_build, v = timed(lambda: Valuer.build(model, streams=["revenue"], draws=False))
+    res["build_first_seconds"] = t_first
+    res["build_seconds"] = t_build
+    res["point_solve"] = v.solution.stats()
+    rng = np.random.default_rng(0)
+    m = 1_000_000
+    states = rng.integers(0, model.n_states, size=m)
+    v.values(states[:10], "revenue")
+    t_lookup, _ = timed(lambda: v.values(states, "revenue"), repeat=5)
+    grid = model.grid
+    codes = np.unravel_index(states, grid.shape)
+    cols = {ax.name: np.asarray(ax.levels, dtype=object)[c] for ax, c in zip(grid.axes, codes)}
+    t_names, idx = timed(lambda: v.index_many(cols), repeat=2)
+    assert np.array_equal(idx, states)
+    res["lookup_seconds_per_million_states"] = t_lookup * 1e6 / m
+    res["lookup_seconds_per_million_coordinates_by_name"] = (t_names + t_lookup) * 1e6 / m
+    print(f"lookup: {t_lookup:.4f} s per 1e6 states; {t_names + t_lookup:.3f} s per 1e6 named coordinates", flush=True)
+
+    # --- adjoint vs cold forward solve
+    spec = model.spec
+    st = grid.codes()[grid.position(spec.status_axis)]
+    mu = (st == 0).astype(float) * (grid.codes()[grid.position("tenure")] == 0)
+    mu /= mu.sum()
+    solve(model, mu, transpose=True)  # warm-up compile
+    solve(model, "revenue")
+    t_adj, adj = timed(lambda: solve(model, mu, transpose=True), repeat=2)
+    t_fwd, fwd = timed(lambda: solve(model, "revenue"), repeat=2)
+    res["adjoint_seconds"] = t_adj
+    res["forward_cold_seconds"] = t_fwd
+    res["adjoint_over_forward"] = t_adj / t_fwd
+    res["adjoint_stats"] = adj.stats()
+    res["forward_stats"] = fwd.stats()
+    print(f"adjoint {t_adj:.2f} s vs cold forward {t_fwd:.2f} s", flush=True)
+
+    # --- exact transition change: warm vs cold
+    ch = TransitionChange("engagement", "e3", 0.03, {"next.status": "plus", "engagement": "e2"})
+    v.transition_change(ch)  # warm-up (compiles the changed-model solve)
+    t_change, cr = timed(lambda: v.transition_change(ch, weights=mu), repeat=2)
+    changed = model.with_tables({"engagement": __import__("stateworth.valuation", fromlist=["apply_change"])
+                                 .apply_change(model, ch)})
+    t_cold, cold = timed(lambda: solve(changed, "revenue"), repeat=2)
+    err = float(np.max(np.abs(cr.delta - (cold.values[:, 0] - v.solution.values[:, 0]))))
+    res["change"] = {"text": ch.describe(), "warm_seconds_total": t_change, "warm_solve_seconds": cr.stats["seconds"],
+                     "warm_iterations": cr.stats["iterations"], "warm_operator_applies": cr.stats["operator_applies"],
+                     "cold_seconds": t_cold, "cold_iterations": cold.iterations,
+                     "cold_operator_applies": cold.operator_applies,
+                     "warm_over_cold": t_change / t_cold, "max_abs_delta_difference": err,
+                     "weighted_delta": cr.weighted}
+    print(f"change warm {t_change:.2f} s ({cr.stats['iterations']} it) vs cold {t_cold:.2f} s ({cold.iterations} it)",
+          flush=True)
+
+    # --- draws: batched vs separate
+    draws = dirichlet_draws(model.tables, a.draws, a.conc, seed=7)
+    dm = model.__class__(**{**model.__dict__, "draws": draws})
+    t_db, vd = timed(lambda: Valuer.build(dm, streams=["revenue"], chunk=a.batch))
+    res["draws_build_seconds_including_compile"] = t_db
+    res["draws_batched_seconds"] = vd.draw_stats["seconds"]
+    res["draws_stats"] = vd.draw_stats
+    c0 = {"market": "m00", "tenure": "0", "status": "prospect", "engagement": "e0", "band": grid.axis("band").levels[-1]}
+    acq = vd.acquisition(c0, "basic")
+    res["acquisition_example"] = {"value": acq.value, "interval": acq.interval, "level": acq.level}
+    t_sep = []
+    for d in range(a.separate):
+        t0 = time.perf_counter()
+        md = model.with_tables({k: draws[k][d] for k in draws})
+        solve(md, "revenue")
+        t_sep.append(time.perf_counter() - t0)
+    # the first separate solve pays no extra compile: the solve above already compiled this shape
+    per = float(np.median(t_sep))
+    res["separate_seconds_each"] = t_sep
+    res["separate_200_estimated_seconds"] = per * a.draws
+    res["batched_speedup_vs_separate"] = per * a.draws / vd.draw_stats["seconds"]
+    res["note"] = (f"separate solves timed on {a.separate} draws (median, each = compile the drawn model + cold "
+                   f"solve) and scaled to {a.draws}; batched time excludes nothing but the point solve")
+    print(f"draws: batched {vd.draw_stats['seconds']:.1f} s vs separate ~{per * a.draws:.1f} s", flush=True)
+
+    out = Path(a.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_suffix(".json.tmp")
+    tmp.write_text(json.dumps(res, indent=1, default=float))
+    os.replace(tmp, out)
+    print(json.dumps({k: res[k] for k in ("states", "lookup_seconds_per_million_states", "adjoint_over_forward",
+                                          "batched_speedup_vs_separate")}, default=float))
+
+
+if __name__ == "__main__":
+    main()
