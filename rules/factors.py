@@ -126,17 +126,15 @@ def check_table(spec: Spec, factor: Factor, table: np.ndarray, where: str) -> np
                         f"rows must sum to 1 within {ROW_SUM_TOLERANCE:g}", where=where)
     dims, mask = move_mask(spec, factor.axis)
     if not mask.all():
-        # broadcast table and mask over the union of their dims
+        # broadcast table and mask over the union of their dims, current ones first and the next value last (for the message)
         tdims = [_dimname(g) for g in factor.given] + [f"{factor.axis}'"]
-        union = list(dict.fromkeys(tdims + list(dims)))
+        union = list(dict.fromkeys(tdims[:-1] + list(dims[:-1]))) + [tdims[-1]]
         tb = _align(t, tdims, union, spec)
         mb = _align(mask, list(dims), union, spec)
         viol = (tb > 0) & ~mb
         if viol.any():
-            i = np.argwhere(viol)[0]
-            val = tb[tuple(i)] if tb.shape[tuple(range(len(union)))[0]] else 0
-            full = np.broadcast_to(tb, np.broadcast_shapes(tb.shape, mb.shape))
-            val = full[tuple(i)]
+            i = tuple(np.argwhere(viol)[0])
+            val = np.broadcast_to(tb, viol.shape)[i]
             desc = _union_cell(spec, union, i)
             raise SpecError(f"probability {val:.3g} on a move the rules forbid ({desc}); set it to 0 or "
                             f"allow the move in axes.{factor.axis}.moves / not_sold", where=where)
