@@ -9,8 +9,10 @@ by their index map and cycles by one. A person enters the panel in the period th
 and stays in it (as a former member after lapsing); never-members never appear.
 
 Covariates of a propensity band axis confound membership: covariate j of a row is
-``(-1)^j (band - (B - 1) / 2) + 0.15 z`` with z standard normal (standardised units), so the
-band, which drives joining, lapsing and re-joining in the true tables, is what they measure.
+``(-1)^j (band - (B - 1) / 2) + 0.15 z`` with z a standard normal drawn once per person
+(standardised units), so the band, which drives joining, lapsing and re-joining in the true
+tables, is what they measure. The fit orders bands by membership score, so give band levels in
+increasing order of the propensity to be a member.
 Revenue is the plan's list price from the first reward stream that has prices (0 otherwise).
 
 The market-size table holds the true population per market with low / high at -/+ 10 % (low
@@ -127,8 +129,10 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
     if lay.band:
         B = len(spec.axis_levels(lay.band))
         centre = cols["_band"] - (B - 1) / 2.0
+        # a person's measurement error is their own and lasts (age, distance do not jitter monthly)
+        noise = rng.standard_normal((N, len(lay.covariates)))
         for j, c in enumerate(lay.covariates):
-            arrays[c] = pa.array((-1) ** j * centre + COVARIATE_NOISE * rng.standard_normal(n))
+            arrays[c] = pa.array((-1) ** j * centre + COVARIATE_NOISE * noise[cols["account"], j])
     arrays["revenue"] = pa.array(cols["revenue"])
     panel = pa.table(arrays)
     m_levels = spec.axis_levels(lay.market)

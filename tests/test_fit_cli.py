@@ -1,0 +1,49 @@
+"""`stateworth simulate` and `stateworth fit` end to end through the command line."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pandas as pd
+
+from stateworth.clients.cli import main
+from stateworth.rules import load_model
+
+SPEC = str(Path(__file__).parent / "data" / "mini_fitness.toml")
+
+
+def test_simulate_then_fit(tmp_path, capsys):
+    panel = tmp_path / "panel.parquet"
+    assert main(["simulate", SPEC, "--accounts", "1500", "--periods", "10", "--seed", "2", "-o", str(panel)]) == 0
+    markets = tmp_path / "panel.markets.csv"
+    assert panel.is_file() and markets.is_file()
+    out = tmp_path / "model"
+    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out), "--draws", "5"]) == 0
+    text = capsys.readouterr().out
+    assert "join hazard" in text and "not accounting figures" in text
+    model, extra = load_model(out)
+    assert model.draws["status"].shape[0] == 5
+    assert {"sensitivity.size_low.table.status", "sensitivity.size_high.table.status"} <= set(extra)
+    diag = json.loads((out / "diagnostics.json").read_text())
+    assert diag["version"] == model.version and (out / "diagnostics.txt").is_file()
+    # the same inputs give the same model (content hash)
+    out2 = tmp_path / "model2"
+    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out2), "--draws", "5",
+                 "--quiet"]) == 0
+    assert load_model(out2)[0].hash == model.hash
+
+
+def test_fit_user_error_exits_1_and_writes_nothing(tmp_path, capsys):
+    panel = tmp_path / "p.csv"
+    assert main(["simulate", SPEC, "--accounts", "300", "--periods", "4", "-o", str(panel)]) == 0
+    mk = pd.read_csv(tmp_path / "p.markets.csv")
+    mk[mk["market"] == "north"].to_csv(tmp_path / "bad.csv", index=False)
+    out = tmp_path / "model"
+    rc = main(["fit", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "bad.csv"), "-o", str(out)])
+    err = capsys.readouterr().err
+    assert rc == 1 and "bad.csv, column market" in err and "south" in err and "Traceback" not in err
+    assert not out.exists()
+    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "p.markets.csv"), "-o", str(out),
+                 "--strength", "lots"]) == 1
+    assert main(["check", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "bad.csv")]) == 1
