@@ -319,7 +319,7 @@ def check_spec(spec: Spec) -> list[str]:
     for m in members:
         if m not in st_levels:
             p.append(f"axes.{st}.members: '{m}' is not a level of {st}; levels are {_fmt(st_levels)}")
-    if members and len(set(members)) == len(st_levels):
+    if members and st_levels and set(st_levels) <= set(members):
         p.append(f"axes.{st}.members: every level is a member level; keep at least one non-member level (e.g. 'prospect')")
 
     fixed = [n for n, a in spec.axes.items() if a.kind == "fixed"]
