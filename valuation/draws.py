@@ -67,15 +67,17 @@ def slice_parts(parts: RewardParts, states: np.ndarray) -> RewardParts:
     return RewardParts(base=parts.base[states], cols=parts.cols[states], masks=parts.masks[states], scale=parts.scale)
 
 
+@jax.jit
+def _reward_jit(op, base, cols, masks, scale):
+    if cols.shape[1] == 0:
+        return base
+    return base + scale * jnp.sum(masks * op.mv(cols), axis=1)
+
+
 def rewards_on(op, parts: Sequence[RewardParts]) -> jax.Array:
-    """``(n, k)`` rewards of the streams ``parts`` under operator ``op`` (traceable)."""
-    out = []
-    for p in parts:
-        r = jnp.asarray(p.base)
-        if p.cols.shape[1]:
-            r = r + p.scale * jnp.sum(jnp.asarray(p.masks) * op.mv(jnp.asarray(p.cols)), axis=1)
-        out.append(r)
-    return jnp.stack(out, axis=1)
+    """``(n, k)`` rewards of the streams ``parts`` under operator ``op``."""
+    return jnp.stack([_reward_jit(op, jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale)
+                      for p in parts], axis=1)
 
 
 def stacked_tables(model, draws: Mapping[str, np.ndarray] | None = None) -> tuple[dict[str, np.ndarray], int]:

@@ -28,6 +28,7 @@ from stateworth.valuation.answer import CAUTION, Answer, ChangeResult, MarginalR
 from stateworth.valuation.change import TransitionChange, apply_change, describe_change
 from stateworth.rules.compiled import content_hash
 from stateworth.valuation.block import restrict, slice_table, touched
+from stateworth.valuation.draws import DENSE_MAX as DRAWS_DENSE_MAX
 from stateworth.valuation.draws import (draw_rewards, horizon_draws, reward_parts, rewards_for_draws, rewards_on,
                                         slice_parts, solve_draws, stacked_tables)
 from stateworth.valuation.marginal import ranked_entries, table_gradients
@@ -468,7 +469,9 @@ class Valuer:
         r_sub = np.asarray(rewards_on(sub.operator, [parts]))
         sub = dataclasses.replace(sub, rewards={stream: r_sub[:, 0]})
         old = self._values[block.states, j]
-        sol = solve(sub, r_sub, tol=self.tol, x0=old[:, None])
+        # dense LU only where it is cheap; the solver's own threshold is for cold solves
+        method = "gmres" if sub.n_states > DRAWS_DENSE_MAX else "auto"
+        sol = solve(sub, r_sub, tol=self.tol, x0=old[:, None], method=method)
         seconds = time.perf_counter() - t0
         delta = np.zeros(model.n_states)
         delta[block.states] = sol.values[:, 0] - old
