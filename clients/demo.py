@@ -110,9 +110,15 @@ class Server:
         self.proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env)
         self.events: list[dict] = []
         self._cv = threading.Condition()
+        self.timeout = timeout
         threading.Thread(target=self._read, daemon=True).start()
         self.port = int(self.wait_for("listening", timeout)["port"])
-        self.wait_for("serving", timeout)
+
+    def wait_serving(self) -> float:
+        """Block until the server has loaded and solved its models; returns the seconds waited."""
+        t = time.perf_counter()
+        self.wait_for("serving", self.timeout)
+        return time.perf_counter() - t
 
     def _read(self) -> None:
         for line in self.proc.stderr:  # type: ignore[union-attr]
@@ -226,7 +232,7 @@ def run_demo(output: str | Path = "demo-out", spec: str | Path | None = None, ac
         shutil.rmtree(out)
     out.mkdir(parents=True)
     (out / MARKER).write_text("written by `stateworth demo`; the next demo run replaces this folder\n")
-    step = Step(7)
+    step = Step((7 if estimation_available() else 6) - (0 if serve else 1))
     summary: dict[str, Any] = {"spec": str(spec_path)}
 
     with step(f"check the spec {spec_path}"):
@@ -238,45 +244,53 @@ def run_demo(output: str | Path = "demo-out", spec: str | Path | None = None, ac
     model_dir, control_dir, treatment_dir, source = build_models(spec_path, out, sc, accounts, seed, step)
     summary["tables"] = source
 
-    with step("solve every reward stream (I - beta P) V = r"):
-        valuer = load_valuer(str(model_dir), quiet=True)
-        s = valuer.solution.stats()
-        print(f"      {valuer.model.n_states:,} states, {s['method']}: {s['status']}, {s['iterations']} iterations, "
-              f"residual {s['residual']:.1e}; {valuer.n_draws} posterior draws")
-        summary["solve"] = s
-
-    streams = list(valuer.streams)
-    price_stream = streams[0]
-    product_stream = "margin" if "margin" in streams else streams[0]
-    members_sel = {sc.status: list(sp.members)}
-    plan_sel = {sc.status: [sc.plan]}
-    if sc.market_axis:
-        plan_sel[sc.market_axis] = [sc.market]
-    pi_members = cohort_weights(valuer, members_sel)
-    pi_plan = cohort_weights(valuer, plan_sel)
-    questions = Questions(sc, valuer, price_stream, product_stream, pi_members, pi_plan)
+    server = None
     if serve:
-        from stateworth.clients.client import Client
-
+        # the server loads and solves its models in its own process while this one solves and
+        # writes the report: on a small machine the two overlap instead of running in turn
         with step(f"start `stateworth serve {out / 'models'}` on a free loopback port"):
             server = Server(out / "models", out / "server.log")
-            print(f"      serving on {server.target} (log: {out / 'server.log'})")
-        try:
+            print(f"      listening on {server.target}; it loads and solves its models in the background "
+                  f"(log: {out / 'server.log'})")
+    try:
+        with step("solve every reward stream (I - beta P) V = r"):
+            valuer = load_valuer(str(model_dir), quiet=True)
+            s = valuer.solution.stats()
+            print(f"      {valuer.model.n_states:,} states, {s['method']}: {s['status']}, {s['iterations']} iterations, "
+                  f"residual {s['residual']:.1e}; {valuer.n_draws} posterior draws solved in one batch")
+            summary["solve"] = s
+
+        with step("write the report"):
+            page = build_report(model_dir, out / "report", valuer=valuer, progress=False)
+            print(f"      {page}")
+        summary["report"] = str(page)
+
+        streams = list(valuer.streams)
+        price_stream = streams[0]
+        product_stream = "margin" if "margin" in streams else streams[0]
+        members_sel = {sc.status: list(sp.members)}
+        plan_sel = {sc.status: [sc.plan]}
+        if sc.market_axis:
+            plan_sel[sc.market_axis] = [sc.market]
+        pi_members = cohort_weights(valuer, members_sel)
+        pi_plan = cohort_weights(valuer, plan_sel)
+        questions = Questions(sc, valuer, price_stream, product_stream, pi_members, pi_plan)
+        if server is not None:
+            from stateworth.clients.client import Client
+
             with step("ask the server what a pricing system, a product team and an experiment read-out ask"):
+                waited = server.wait_serving()
+                print(f"      server serving (waited {waited:.0f} s for it to finish loading)")
                 with Client(server.target, timeout=60.0, solve_timeout=300.0) as client:
                     answers = questions.ask_server(client, sp, control_dir, treatment_dir)
-        finally:
+        else:
+            with step("answer the pricing, product and experiment questions in-process (--no-server)"):
+                answers = questions.ask_library(sp, control_dir, treatment_dir)
+    finally:
+        if server is not None:
             rc = server.stop()
             print(f"      server stopped (exit status {rc})")
-    else:
-        with step("answer the pricing, product and experiment questions in-process (--no-server)"):
-            answers = questions.ask_library(sp, control_dir, treatment_dir)
     summary["answers"] = answers
-
-    with step("write the report"):
-        page = build_report(model_dir, out / "report", valuer=valuer, progress=False)
-        print(f"      {page}")
-    summary["report"] = str(page)
     summary["seconds"] = time.perf_counter() - t_start
     (out / "summary.json").write_text(json.dumps(summary, indent=2, default=float))
     questions.explain(answers, page, source, summary["seconds"])
@@ -353,7 +367,7 @@ class Questions:
               f"{money(a['upgrade_one']['value'])} {unit} ({self.price})")
         print(f"                  and per {sc.plan} member in {sc.market}: {money(a['upgrade_cohort']['value'])} {unit} "
               f"{interval(a['upgrade_cohort']['interval'])}")
-        print(f"      product:    +{LIFT:.0%} {sc.lift_from} -> {sc.lift_to} for members: "
+        print(f"      product:    +{100 * LIFT:.0f} points {sc.lift_from} -> {sc.lift_to} for members: "
               f"{money(a['engagement_lift']['value'])} {unit} per member ({self.product}) "
               f"{interval(a['engagement_lift']['interval'])}")
         print(f"      experiment: treatment - control: {money(a['readout']['difference']['value'])} {unit} per member "
@@ -374,10 +388,11 @@ class Questions:
              interval(a["upgrade_one"]["interval"]), f"at {_state(sc.member)}"],
             [f"plan upgrade, {sc.plan} members{where}", money(a["upgrade_cohort"]["value"]),
              interval(a["upgrade_cohort"]["interval"]), "per member, in their long-run mix: bounds an upgrade offer"],
-            [f"engagement lift +{LIFT:.0%} ({self.product})", money(a["engagement_lift"]["value"]),
+            [f"engagement lift +{100 * LIFT:.0f} points ({self.product})", money(a["engagement_lift"]["value"]),
              interval(a["engagement_lift"]["interval"]), "per member: what the product team's lift is worth"],
             [f"experiment read-out ({self.product})", money(a["readout"]["difference"]["value"]),
-             interval(a["readout"]["difference"]["interval"]), "treatment - control, per member"],
+             interval(a["readout"]["difference"]["interval"]),
+             "treatment - control per member, two arms fitted apart: the interval says how noisy"],
         ]
         print(f"\nWhat the figures mean ({unit}, discounted at the spec's rate; streams {self.price} and "
               f"{self.product}; model tables: {source}):")

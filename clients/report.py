@@ -514,7 +514,70 @@ def _img(name: str, png: bytes | None, alt: str) -> str:
     return f"<img id=\"chart-{name}\" src=\"{uri}\" alt=\"{html.escape(alt)}\">"
 
 
+def _cell_text(cell: Mapping[str, Any]) -> str:
+    return ", ".join(f"{k}={v}" for k, v in cell.items())
+
+
+def _fit_diagnostics_html(diag: Mapping[str, Any]) -> str | None:
+    """The sections of a ``stateworth fit`` diagnostics.json; None if it has another layout."""
+    if not all(k in diag for k in ("panel", "overlap", "prior", "joins")):
+        return None
+    e = html.escape
+    parts = []
+    try:
+        from stateworth.rules.diagnostics import summary_text
+        parts.append(f"<pre>{e(summary_text(dict(diag)))}</pre>")
+    except Exception:  # noqa: BLE001 - the summary is a convenience; the tables below carry the content
+        pass
+    o = diag["overlap"]
+    listed = o.get("listed") or []
+    parts.append(f"<h3>Overlap</h3><p>{o.get('cells_failing', 0):,} cells of the {e(str(o.get('factor', 'status')))} "
+                 f"factor show moves but none into a member or none into a non-member status "
+                 f"({100 * float(o.get('share_failing', 0.0)):.2f} % of the observed moves); "
+                 f"{o.get('cells_without_moves', 0):,} cells have no moves at all (their rows come from the prior). "
+                 "A contrast that starts in such a cell leans on the model rather than on data.</p>")
+    if listed:
+        rows = [[_cell_text(x["cell"]), x.get("missing"), x.get("moves"), f"{100 * float(x.get('share', 0)):.3f} %"]
+                for x in listed]
+        parts.append(_table(["cell", "no moves into", "moves", "share of moves"], rows, [False, False, True, True])
+                     + (f"<p class=\"note\">the first {len(listed)} of {o.get('cells_failing', 0):,} cells</p>"
+                        if o.get("cells_failing", 0) > len(listed) else ""))
+    prop = diag.get("propensity")
+    parts.append("<h3>Balance by propensity band</h3>")
+    if prop:
+        rows = [[b] + [None if v is None else f"{v:+.3f}" for v in row]
+                for b, row in zip(prop["bands"], prop["smd_by_band"])]
+        parts.append(f"<p>Standardised mean difference of each covariate between members and former members "
+                     f"within each band of '{e(prop['axis'])}'; |SMD| below {prop.get('smd_rule', 0.1)} is commonly "
+                     f"read as balanced. Unbalanced: {e(', '.join(prop.get('unbalanced') or []) or 'none')}.</p>"
+                     + _table(["band"] + list(prop["covariates"]), rows, [False] + [True] * len(prop["covariates"])))
+    else:
+        parts.append("<p>The spec has no propensity band axis, so no balance check was made: the causal "
+                     "reading rests on the other axes alone capturing what drives membership.</p>")
+    parts.append("<h3>Where the prior dominated</h3>")
+    rows = [[p_["factor"], f"{float(p_['strength']):.3g}", p_["cells"], p_["cells_with_moves"],
+             p_.get("prior_dominated"), f"{100 * float(p_.get('share_prior_dominated', 0.0)):.2f} %"]
+            for p_ in diag["prior"]]
+    parts.append("<p>Cells with fewer observed moves than the prior strength (pseudo-moves) are mostly their "
+                 "parent cell's distribution.</p>"
+                 + _table(["factor", "prior strength", "cells", "cells with moves", "prior-dominated cells",
+                           "their share of moves"], rows, [False, True, True, True, True, True]))
+    j = diag["joins"]
+    if j.get("hazard"):
+        rows = [[m, f"{h:.5f}", f"{j['hazard_high_size'][m]:.5f}", f"{j['hazard_low_size'][m]:.5f}",
+                 (j.get("first_joins") or {}).get(m)] for m, h in j["hazard"].items()]
+        parts.append("<h3>Never-member join rates</h3><p>First joins / (addressable size - accounts already "
+                     "tracked), per month; the range comes from the market-size range given to the fit.</p>"
+                     + _table(["market", "join rate", "at the high size", "at the low size", "first joins"], rows,
+                              [False, True, True, True, True]))
+    return "\n".join(parts)
+
+
 def _diagnostics_html(diag: Any) -> str:
+    if isinstance(diag, Mapping):
+        known = _fit_diagnostics_html(diag)
+        if known is not None:
+            return known
     if diag is None:
         return ("<p><strong>No fit diagnostics:</strong> this model directory has no "
                 "<code>diagnostics.json</code> (it was not fitted from a panel, e.g. it was compiled from "
