@@ -5,7 +5,9 @@ The server runs in its own process on a loopback port; this process is the load 
 a call count and a time limit. Measured:
 
 * single-value unary calls (GetValue) at 1, 8 and 32 concurrent callers: calls per second and
-  p50 / p99 latency as seen by the caller (ms), and errors;
+  p50 / p99 latency as seen by the caller (ms), and errors. Callers are asyncio tasks on
+  grpc.aio channels (a light load generator); a second, shorter run at 1 and 8 callers uses the
+  stateworth Client from one thread per caller (what a Python service embedding it would see);
 * values per second through the batch form (BatchGetValues, 10^5 states per call, level codes);
 * the marginal-transition table (ListMarginalValues, top 20): the first call (compiles the
   adjoint solve and the table gradients) and a second call for another cohort (solves, no
@@ -93,6 +95,53 @@ def unary_phase(target: str, model: str, states: list[dict], callers: int, calls
             "max_ms": max(flat) * 1e3, "errors": int(sum(errors))}
 
 
+def unary_phase_aio(target: str, model: str, states: list[dict], callers: int, calls: int, seconds: float) -> dict:
+    """The same load from asyncio callers on one grpc.aio channel each (a lighter load generator:
+    no thread switching in this process, so the latency is mostly the server's)."""
+    import asyncio
+
+    import grpc
+
+    from stateworth.v1 import valuation_service_pb2 as pb
+    from stateworth.v1 import valuation_service_pb2_grpc as vgrpc
+
+    reqs = [pb.GetValueRequest(name=f"models/{model}", state=pb.State(levels=s)) for s in states]
+    per = max(calls // callers, 1)
+
+    async def run() -> tuple[list[float], int, float]:
+        chans = [grpc.aio.insecure_channel(target) for _ in range(callers)]
+        stubs = [vgrpc.ValuationServiceStub(c) for c in chans]
+        for st in stubs:
+            await st.GetValue(reqs[0], timeout=10)
+        lat: list[float] = []
+        errors = 0
+        end = time.perf_counter() + seconds
+
+        async def caller(k: int) -> None:
+            nonlocal errors
+            for i in range(per):
+                t = time.perf_counter()
+                try:
+                    await stubs[k].GetValue(reqs[(k * 7919 + i) % len(reqs)], timeout=10)
+                except grpc.aio.AioRpcError:
+                    errors += 1
+                lat.append(time.perf_counter() - t)
+                if t > end:
+                    break
+
+        t0 = time.perf_counter()
+        await asyncio.gather(*[caller(k) for k in range(callers)])
+        wall = time.perf_counter() - t0
+        for c in chans:
+            await c.close()
+        return lat, errors, wall
+
+    lat, errors, wall = asyncio.run(run())
+    return {"callers": callers, "calls": len(lat), "seconds": wall, "calls_per_s": len(lat) / wall,
+            "p50_ms": percentile(lat, 50) * 1e3, "p99_ms": percentile(lat, 99) * 1e3, "max_ms": max(lat) * 1e3,
+            "errors": int(errors), "load_generator": "grpc.aio"}
+
+
 def batch_phase(target: str, model: str, shape: list[int], per_call: int, calls: int, seconds: float) -> dict:
     from stateworth.clients.client import Client
 
@@ -142,7 +191,7 @@ def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--calls", type=int, default=4000, help="unary calls per concurrency level (bound)")
     ap.add_argument("--seconds", type=float, default=20.0, help="time bound per phase")
-    ap.add_argument("--threads", type=int, default=8, help="server threads")
+    ap.add_argument("--threads", type=int, default=4, help="server threads (fewer contend less for the GIL)")
     args = ap.parse_args()
     OUT.mkdir(parents=True, exist_ok=True)
     model_dir = OUT / "serve-models"
@@ -182,10 +231,16 @@ def main() -> int:
               "unary": [], "aims": {"p99_ms_at_8": 5.0, "batch_values_per_s": 1e6}}
     try:
         for callers in (1, 8, 32):
-            r = unary_phase(target, model, states, callers, args.calls, args.seconds)
+            r = unary_phase_aio(target, model, states, callers, args.calls, args.seconds)
             result["unary"].append(r)
-            print(f"GetValue x{callers:2d}: {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms  "
-                  f"p99 {r['p99_ms']:.2f} ms  errors {r['errors']}", flush=True)
+            print(f"GetValue x{callers:2d} (aio callers):    {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms"
+                  f"  p99 {r['p99_ms']:.2f} ms  errors {r['errors']}", flush=True)
+        for callers in (1, 8):
+            r = unary_phase(target, model, states, callers, args.calls // 2, args.seconds / 2)
+            r["load_generator"] = "stateworth Client, one thread per caller"
+            result.setdefault("unary_client_threads", []).append(r)
+            print(f"GetValue x{callers:2d} (Client threads): {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms"
+                  f"  p99 {r['p99_ms']:.2f} ms  errors {r['errors']}", flush=True)
         b = batch_phase(target, model, {a: len(lv) for a, lv in axes.items()}, 100_000, 30, args.seconds)
         result["batch"] = b
         print(f"BatchGetValues: {b['values_per_s']:,.0f} values/s ({b['states_per_call']:,} per call), "
@@ -198,7 +253,8 @@ def main() -> int:
         proc.send_signal(signal.SIGTERM)
         result["server_exit_code"] = proc.wait(60)
     u8 = next(r for r in result["unary"] if r["callers"] == 8)
-    errors = sum(r["errors"] for r in result["unary"]) + result.get("batch", {}).get("errors", 0)
+    errors = (sum(r["errors"] for r in result["unary"] + result.get("unary_client_threads", []))
+              + result.get("batch", {}).get("errors", 0))
     result["verdict"] = {"p99_at_8_ok": u8["p99_ms"] < 5.0,
                          "batch_ok": result.get("batch", {}).get("values_per_s", 0) >= 1e6, "no_errors": errors == 0}
     (OUT / "serve.json").write_text(json.dumps(result, indent=2))

@@ -43,6 +43,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--metrics-host", default="127.0.0.1", help="address of the metrics endpoint (default loopback)")
     p.add_argument("--no-reflection", action="store_true", help="do not serve gRPC server reflection")
     p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    p.add_argument("--no-access-log", action="store_true",
+                   help="no log line per call (metrics still count every call)")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -57,6 +59,9 @@ def run(args: argparse.Namespace) -> int:
     if args.max_message_mb <= 0:
         raise QueryError("--max-message-mb must be positive", field="max_message_mb")
     setup(args.log_level)
+    if args.no_access_log:
+        import logging
+        logging.getLogger("stateworth.server.access").setLevel(logging.WARNING)
     config = ServerConfig(model_dir=args.model_dir, host=args.host, port=args.port, tls_cert=args.tls_cert,
                           tls_key=args.tls_key, token=read_secret(args.token_file, "token"),
                           admin_token=read_secret(args.admin_token_file, "admin token"), threads=args.threads,
