@@ -81,64 +81,68 @@ def counter_sql(spec, lay: Layout, axis: str, s: str, sp: str) -> tuple[str, str
 
 
 def transitions_sql(spec, source: str, extra: tuple[str, ...] = ()) -> str:
-    """A query whose rows are the panel rows with derived counters and the previous row's
-    codes: columns ``account, p, pp`` (previous period), ``g<i>`` (codes now) and ``q<i>``
-    (codes in the previous row), plus the ``extra`` columns of ``source``."""
+    """A query whose rows are the panel rows with their derived counters and the next row's
+    codes: columns ``account, p, np`` (the next row's period), ``q<i>`` (codes of every grid
+    axis in this row: the move's current state), ``n<i>`` (the next row's codes of the random
+    axes), plus the ``extra`` columns of ``source``. Three window passes, all over one window
+    (PARTITION BY account ORDER BY p), none over a second partitioning."""
     lay = Layout.of(spec)
     grid = spec.grid_order
     s = lay.col(lay.status)
-    base_cols = ["account", "p"] + [lay.col(a) for a in grid if a not in lay.derived] + list(extra)
+    observed = [lay.col(a) for a in grid if a not in lay.derived]
     counters = [a for a in lay.derived if spec.axes[a].kind == "counter"]
     cycles = [a for a in lay.derived if spec.axes[a].kind == "cycle"]
-    ctes = [f"t0 AS (SELECT {', '.join(base_cols)}, LAG(p) OVER ({W}) AS pp, LAG({s}) OVER ({W}) AS sp FROM {source})"]
-    cur = "t0"
-    flags = []
+    leads = [f"LEAD({lay.col(a)}) OVER ({W}) AS n{lay.col(a)[1:]}" for a in spec.draw_order]
+    cols0 = ["account", "p"] + observed + list(extra)
+    ctes = [f"t0 AS (SELECT {', '.join(cols0)}, LEAD(p) OVER ({W}) AS np, {', '.join(leads)}"
+            f"{f', LAG({s}) OVER ({W}) AS sp' if counters else ''} FROM {source})"]
+    nexts = [f"n{lay.col(a)[1:]}" for a in spec.draw_order]
+    carry = cols0 + ["np"] + nexts
+    sums = []
     for a in counters:
         k = lay.col(a)
         r, adv = counter_sql(spec, lay, a, s, "sp")
-        flags += [f"{r} AS r_{k}", f"{adv} AS a_{k}"]
+        # running count of resets, and of advancing rows that are not resets
+        sums += [f"{r} AS r_{k}", f"SUM({r}) OVER ({W} {RUNNING}) AS rr_{k}",
+                 f"SUM(({adv}) * (1 - ({r}))) OVER ({W} {RUNNING}) AS aa_{k}"]
     if counters:
-        ctes.append(f"t1 AS (SELECT *, {', '.join(flags)} FROM {cur})")
-        segs = [f"SUM(r_{lay.col(a)}) OVER ({W} {RUNNING}) AS seg_{lay.col(a)}" for a in counters]
-        ctes.append(f"t2 AS (SELECT *, {', '.join(segs)} FROM t1)")
+        ctes.append(f"t1 AS (SELECT {', '.join(carry)}, {', '.join(sums)} FROM t0)")
         vals = []
         for a in counters:
             k = lay.col(a)
             cap = len(spec.axis_levels(a)) - 1
-            vals.append(f"LEAST({cap}, CASE WHEN seg_{k} = 0 THEN {counter_start(spec, a)} ELSE 0 END + "
-                        f"SUM(a_{k} * (1 - r_{k})) OVER (PARTITION BY account, seg_{k} ORDER BY p {RUNNING})) AS {k}")
-        ctes.append(f"t3 AS (SELECT *, {', '.join(vals)} FROM t2)")
-        cur = "t3"
-    lags = []
+            # the running sum at the last reset row (it is non-decreasing, so a running max)
+            last = f"MAX(CASE WHEN r_{k} = 1 THEN aa_{k} END) OVER ({W} {RUNNING})"
+            vals.append(f"LEAST({cap}, CASE WHEN rr_{k} = 0 THEN {counter_start(spec, a)} + aa_{k} "
+                        f"ELSE aa_{k} - {last} END) AS {k}")
+        ctes.append(f"t2 AS (SELECT {', '.join(carry)}, {', '.join(vals)} FROM t1)")
+        cur = "t2"
+    else:
+        cur = "t0"
+    qs = []
     for a in grid:
         k = lay.col(a)
         if a in cycles:
-            size = len(spec.axis_levels(a))
-            lags.append(f"p % {size} AS {k}")
-            lags.append(f"pp % {size} AS q{k[1:]}")
-        elif spec.axes[a].kind == "fixed":
-            lags.append(f"{k} AS q{k[1:]}")
+            qs.append(f"p % {len(spec.axis_levels(a))} AS q{k[1:]}")
         else:
-            lags.append(f"LAG({k}) OVER ({W}) AS q{k[1:]}")
-    keep = ["account", "p", "pp"] + [lay.col(a) for a in grid if a not in cycles] + list(extra)
-    ctes.append(f"t4 AS (SELECT {', '.join(keep)}, {', '.join(lags)} FROM {cur})")
-    return "WITH " + ",\n".join(ctes) + "\nSELECT * FROM t4"
+            qs.append(f"{k} AS q{k[1:]}")
+    ctes.append(f"t3 AS (SELECT account, p, np, {', '.join(qs)}, {', '.join(nexts)}"
+                f"{''.join(', ' + e for e in extra)} FROM {cur})")
+    return "WITH " + ",\n".join(ctes) + "\nSELECT * FROM t3"
 
 
 def count_sql(spec, source: str) -> str:
     """The transition-count query: one GROUP BY over consecutive periods of each account.
 
-    Output columns: ``q<i>`` for every grid axis (current codes), ``g<i>`` for every random axis
-    (next codes), ``n`` (moves). Rows are in no particular order."""
+    Output columns: ``q<i>`` for every grid axis (current codes), ``n<i>`` for every random axis
+    (next codes), ``n`` (moves); unknown codes are -1. Rows are in no particular order."""
     lay = Layout.of(spec)
-    grid = spec.grid_order
-    keys = [f"COALESCE(q{lay.col(a)[1:]}, -1) AS q{lay.col(a)[1:]}" for a in grid]
-    keys += [f"COALESCE({lay.col(a)}, -1) AS n{lay.col(a)[1:]}" for a in spec.draw_order]
+    keys = [f"COALESCE(q{lay.col(a)[1:]}, -1) AS q{lay.col(a)[1:]}" for a in spec.grid_order]
+    keys += [f"COALESCE(n{lay.col(a)[1:]}, -1) AS n{lay.col(a)[1:]}" for a in spec.draw_order]
     names = [k.split(" AS ")[1] for k in keys]
-    inner = transitions_sql(spec, source)
-    body = inner.replace("\nSELECT * FROM t4", "")
-    return (f"{body}\nSELECT {', '.join(names)}, COUNT(*) AS n FROM (SELECT {', '.join(keys)} FROM t4 "
-            f"WHERE pp = p - 1) t5 GROUP BY {', '.join(names)}")
+    body = transitions_sql(spec, source).replace("\nSELECT * FROM t3", "")
+    return (f"{body}\nSELECT {', '.join(names)}, COUNT(*) AS n FROM (SELECT {', '.join(keys)} FROM t3 "
+            f"WHERE np = p + 1) t4 GROUP BY {', '.join(names)}")
 
 
 def first_rows_sql(spec, source: str) -> str:

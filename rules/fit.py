@@ -232,13 +232,13 @@ def _check_moves(spec, panel: Panel, joint: JointCounts, source: str, policy: st
 def _forbidden_error(spec, panel: Panel, joint: JointCounts, j: int, axis: str, total: int, source: str) -> PanelError:
     lay = panel.layout
     grid, draw = list(spec.grid_order), list(spec.draw_order)
-    conds = ["pp = p - 1"]
+    conds = ["np = p + 1"]
     for i, a in enumerate(grid):
-        if spec.axes[a].kind != "cycle" and joint.cur[j, i] >= 0:
+        if joint.cur[j, i] >= 0:
             conds.append(f"q{lay.col(a)[1:]} = {int(joint.cur[j, i])}")
     for r, a in enumerate(draw):
         if joint.nxt[j, r] >= 0:
-            conds.append(f"{lay.col(a)} = {int(joint.nxt[j, r])}")
+            conds.append(f"n{lay.col(a)[1:]} = {int(joint.nxt[j, r])}")
     sql = transitions_sql(spec, source, extra=("_row",))
     row = panel.con.execute(f"SELECT _row FROM ({sql}) x WHERE {' AND '.join(conds)} ORDER BY _row LIMIT 1").fetchone()
     frm = spec.axis_levels(axis)[joint.cur[j, grid.index(axis)]]
@@ -246,7 +246,7 @@ def _forbidden_error(spec, panel: Panel, joint: JointCounts, j: int, axis: str, 
     ctx = ", ".join(f"{a}={spec.axis_levels(a)[joint.cur[j, grid.index(a)]]}" for a in grid
                     if spec.axes[a].kind == "fixed")
     where = f"{panel.path}: row {row[0] if row else '?'}, column {axis}"
-    return PanelError(f"the move {axis} {frm} -> {to} ({ctx}) is forbidden by the spec's move rules "
+    return PanelError(f"the move {axis} {frm} -> {to} ({ctx}) from this row to the account's next month is forbidden by the spec's move rules "
                       f"({total:,} such moves in the panel); correct the data, allow the move in axes.{axis}.moves / "
                       "not_sold, or fit with --drop-forbidden to drop them with a count", where=where)
 
