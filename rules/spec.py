@@ -236,7 +236,10 @@ def _spec_error(source: str, problems: list[str]) -> SpecError:
     return err
 
 
-def _fmt(levels: list[str]) -> str:
+def _fmt(levels: list[str], limit: int = 12) -> str:
+    # long lists (hundreds of markets) would drown the one-line message
+    if len(levels) > limit:
+        return ", ".join(levels[: limit - 2]) + f", ... {levels[-1]} ({len(levels)} in all)"
     return ", ".join(levels)
 
 

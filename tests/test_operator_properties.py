@@ -296,3 +296,22 @@ def test_random_tables_are_accepted_and_forbidden_mass_is_not():
     bad[0, 0] = [0.5, 0.25, 0.25]  # m=a, status=out -> q is not an allowed move
     with pytest.raises(SpecError, match=r"axes\.status\.table.*forbid.*status=out.*next status=q"):
         compile_model(spec, {"status": bad})
+
+
+def test_rule_checker_is_not_vacuous(monkeypatch):
+    """The rule check above fails on a chain that breaks a rule: mass on a forbidden move (tables
+    compiled unchecked), and a counter that ages on the wrong status."""
+    spec = parse_spec(SMALL)
+    tables = random_tables(spec, 5)
+    bad = tables["status"].copy()
+    bad[0, 0] = [0.5, 0.25, 0.25]  # out -> q is not an allowed move
+    model = compile_model(spec, {**tables, "status": bad}, check=False)
+    with pytest.raises(AssertionError, match="mass on a move from out"):
+        _check_rules(SMALL, model, model.csr())
+
+    import stateworth.rules.operator as operator
+    real = operator.counter_index
+    monkeypatch.setattr(operator, "counter_index", lambda s, a: np.minimum(real(s, a) + 1, 2).astype(np.int32))
+    model = compile_model(spec, tables)
+    with pytest.raises(AssertionError, match="counter age"):
+        _check_rules(SMALL, model, model.csr())

@@ -457,3 +457,10 @@ def test_parse_does_not_mutate_input():
     before = copy.deepcopy(data)
     parse_spec(data)
     assert data == before
+
+
+def test_long_level_lists_are_shortened_in_messages():
+    data = huge_spec()
+    data["axes"]["status"]["not_sold"] = {"plus": {"market": ["west"]}}
+    err = refused(data, r"'west' is not a level of market; levels are north, south, m0, .*, \.\.\. m397 \(400 in all\)")
+    assert len(str(err)) < 300
