@@ -186,12 +186,23 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     probs: list[tuple[str, str]] = []
 
+    checks: list[tuple[str, str, object]] = []
+
     def example(cond: str, column: str, msg) -> None:
-        row = _first(con, f"SELECT _row, CAST({_q(column)} AS VARCHAR) FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
-        if row is not None:
-            n = _first(con, f"SELECT count(*) FROM raw WHERE {cond}")[0]
+        checks.append((cond, column, msg))
+
+    def run_checks() -> None:
+        # one scan counts every check; only failing checks look for their first row
+        if not checks:
+            return
+        counts = _first(con, "SELECT " + ", ".join(f"count_if({c})" for c, _, _ in checks) + " FROM raw")
+        for (cond, column, msg), n in zip(checks, counts):
+            if not n:
+                continue
+            row = _first(con, f"SELECT _row, CAST({_q(column)} AS VARCHAR) FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
             more = f" ({n:,} rows in all)" if n > 1 else ""
             probs.append((f"{path}: row {row[0]}, column {column}", msg(row[1]) + more))
+        checks.clear()
 
     for c in ["account", "period"] + list(lay.observed):
         example(f"{_q(c)} IS NULL", c, lambda v: "empty value; every row needs one")
@@ -221,30 +232,37 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
                 lambda v: f"revenue '{v}' is not a number (money per period, e.g. 29.0)")
         example(f"TRY_CAST({_q('revenue')} AS DOUBLE) < 0 OR NOT isfinite(TRY_CAST({_q('revenue')} AS DOUBLE))", "revenue",
                 lambda v: f"revenue {v} is negative or not finite; revenue is money received, >= 0")
+    run_checks()
     if probs:
         return probs, con
-    # per-account history: duplicates, fixed axes that change
     pexpr = f"CAST(substr({per}, 1, 4) AS INTEGER) * 12 + CAST(substr({per}, 6, 2) AS INTEGER) - 1"
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw_p AS SELECT *, {pexpr} AS _p FROM raw")
-    fixed = [a for a in lay.observed if spec.axes[a].kind == "fixed"]
-    lags = ", ".join([f"LAG(_p) OVER w AS _pp"] + [f"LAG(CAST({_q(a)} AS VARCHAR)) OVER w AS _f{i}" for i, a in enumerate(fixed)])
-    conds = ["_pp = _p"] + [f"_f{i} <> CAST({_q(a)} AS VARCHAR)" for i, a in enumerate(fixed)]
-    hist = (f"SELECT _row, _p, _pp, {', '.join(['CAST(' + _q(a) + ' AS VARCHAR) AS _c' + str(i) for i, a in enumerate(fixed)] or ['0 AS _none'])}, "
-            f"{', '.join(f'_f{i}' for i in range(len(fixed))) or '0 AS _none2'} FROM (SELECT *, {lags} FROM raw_p "
-            f"WINDOW w AS (PARTITION BY account ORDER BY _p, _row)) WHERE {' OR '.join(conds)} ORDER BY _row LIMIT 1")
-    row = _first(con, hist)
-    if row is not None:
-        if row[1] == row[2]:
-            probs.append((f"{path}: row {row[0]}, columns account, period",
-                          f"a second row for the same account and period {period_label(row[1])}; one row per account per period"))
-        else:
-            for i, a in enumerate(fixed):
-                if row[3 + i] != row[3 + len(fixed) + i]:
-                    probs.append((f"{path}: row {row[0]}, column {a}",
-                                  f"{a} changes within an account's history ('{row[3 + len(fixed) + i]}' then '{row[3 + i]}'); "
-                                  f"{a} is a fixed axis and never changes"))
-                    break
     return probs, con
+
+
+def history_problems(con, lay: Layout, path: str) -> tuple[list[tuple[str, str]], bool]:
+    """Per-account history checks in one window pass over the coded panel: a second row for the
+    same account and period, a fixed axis that changes. Returns (problems, has gaps)."""
+    fixed = [a for a in lay.observed if lay.spec.axes[a].kind == "fixed"]
+    W = "OVER (PARTITION BY account ORDER BY p, _row)"
+    lag = ", ".join([f"LAG(p) {W} AS pp"] + [f"LAG({lay.col(a)}) {W} AS f{i}" for i, a in enumerate(fixed)])
+    conds = ["pp = p"] + [f"f{i} <> {lay.col(a)}" for i, a in enumerate(fixed)] + ["p - pp > 1"]
+    counts = _first(con, f"SELECT {', '.join(f'count_if({c})' for c in conds)} FROM (SELECT *, {lag} FROM {CODED})")
+    probs = []
+    for k, (cond, n) in enumerate(zip(conds[:-1], counts[:-1])):
+        if not n:
+            continue
+        row = _first(con, f"SELECT _row, p FROM (SELECT *, {lag} FROM {CODED}) WHERE {cond} ORDER BY _row LIMIT 1")
+        more = f" ({n:,} rows in all)" if n > 1 else ""
+        if k == 0:
+            probs.append((f"{path}: row {row[0]}, columns account, period",
+                          f"a second row for the same account and period {period_label(row[1])}; one row per account "
+                          f"per period{more}"))
+        else:
+            a = fixed[k - 1]
+            probs.append((f"{path}: row {row[0]}, column {a}",
+                          f"{a} changes within an account's history; {a} is a fixed axis and never changes{more}"))
+    return probs, bool(counts[-1])
 
 
 def gap_example(con) -> tuple[int, int, int] | None:
@@ -276,7 +294,10 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
     sel.append(f"TRY_CAST({_q('revenue')} AS DOUBLE) AS revenue" if has_rev else "CAST(NULL AS DOUBLE) AS revenue")
     con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS SELECT {', '.join(sel)} FROM raw_p")
     filled = 0
-    gap = gap_example(con)
+    hist, has_gaps = history_problems(con, lay, path)
+    if hist:
+        raise _panel_error(hist)
+    gap = gap_example(con) if has_gaps else None
     if gap is not None:
         if gaps == "error":
             raise PanelError(f"a gap in the account's history: no row for {period_label(gap[1] + 1)}"
