@@ -152,6 +152,8 @@ class Valuer:
     # ---- lookups --------------------------------------------------------------------------
     def _states(self, states) -> np.ndarray:
         s = np.asarray(states)
+        if s.size == 0:
+            return np.zeros(0, dtype=np.int64)
         if s.dtype.kind not in "iu":
             raise QueryError("states must be integer flat indices (use index_many for level names)", field="states")
         s = s.astype(np.int64, copy=False).reshape(-1)
