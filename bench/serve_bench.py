@@ -227,7 +227,8 @@ def main() -> int:
     rng = np.random.default_rng(1)
     states = [{a: lv[int(rng.integers(len(lv)))] for a, lv in axes.items()} for _ in range(2000)]
     result = {"model": {k: info[k] for k in ("name", "version", "states", "compile_s")}, "server_ready_s": ready_s,
-              "server_threads": args.threads, "machine": {"cpus": os.cpu_count(), "python": platform.python_version()},
+              "server_threads": args.threads, "machine": {"cpus": os.cpu_count(), "python": platform.python_version(),
+                          "load_average_at_start": list(os.getloadavg())},
               "unary": [], "aims": {"p99_ms_at_8": 5.0, "batch_values_per_s": 1e6}}
     try:
         for callers in (1, 8, 32):
@@ -252,6 +253,7 @@ def main() -> int:
     finally:
         proc.send_signal(signal.SIGTERM)
         result["server_exit_code"] = proc.wait(60)
+    result["machine"]["load_average_at_end"] = list(os.getloadavg())
     u8 = next(r for r in result["unary"] if r["callers"] == 8)
     errors = (sum(r["errors"] for r in result["unary"] + result.get("unary_client_threads", []))
               + result.get("batch", {}).get("errors", 0))
