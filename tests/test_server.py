@@ -337,7 +337,7 @@ OK_CODES = {grpc.StatusCode.OK, grpc.StatusCode.INVALID_ARGUMENT, grpc.StatusCod
             grpc.StatusCode.RESOURCE_EXHAUSTED}
 
 
-@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(levels=_levels, name=st.one_of(st.just(f"models/{MODEL}"), _text.map(lambda s: "models/" + s), _text),
        horizon=st.one_of(st.none(), st.integers(-5, 2000)), level=st.one_of(st.none(), st.floats(allow_nan=True)),
        codes=st.lists(st.integers(0, 2**31 - 1), max_size=4), stream=st.one_of(st.just(""), _text))
