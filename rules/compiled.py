@@ -16,7 +16,7 @@ import numpy as np
 
 from stateworth import config
 from stateworth.errors import GridTooLargeError, SpecError
-from stateworth.rules.factors import Factor, check_table, factors_of, table_from_rows
+from stateworth.rules.factors import Factor, check_table, factors_of, row_of_cells, table_from_rows
 from stateworth.rules.grid import Grid
 from stateworth.rules.operator import GridOperator, explicit_csr, make_operator
 from stateworth.rules.rewards import reward_vector
@@ -127,8 +127,10 @@ def compile_model(spec: Spec, tables: Mapping[str, np.ndarray] | None = None, *,
     final: dict[str, np.ndarray] = {}
     for f in factors:
         where = f"{source}: axes.{f.axis}.table"
-        t = given[f.axis] if f.axis in given else table_from_rows(spec, f, source)
-        final[f.axis] = check_table(spec, f, t, where) if check else np.asarray(t, dtype=np.float64)
+        written = f.axis not in given
+        t = table_from_rows(spec, f, source) if written else given[f.axis]
+        rows = row_of_cells(spec, f) if written else None
+        final[f.axis] = check_table(spec, f, t, where, rows) if check else np.asarray(t, dtype=np.float64)
     grid = Grid.from_spec(spec)
     op = make_operator(spec, grid, factors, final)
     beta = spec.beta

@@ -86,18 +86,10 @@ def table_from_rows(spec: Spec, factor: Factor, source: str = "<spec>") -> np.nd
     t = np.full(factor.shape, np.nan)
     given_levels = [spec.axis_levels(g) for g in factor.given_axes]
     for row in ax.table:
-        sel = []
-        for g, levels in zip(factor.given, given_levels):
-            val = row.when.get(g)
-            if val is None:
-                sel.append(np.arange(len(levels)))
-            else:
-                vals = [val] if isinstance(val, str) else val
-                sel.append(np.array([levels.index(v) for v in vals]))
         probs = np.zeros(len(lv))
         for k, pr in row.probs.items():
             probs[lv.index(k)] = pr
-        t[np.ix_(*sel, np.arange(len(lv)))] = probs if sel else probs
+        t[np.ix_(*_row_cells(spec, factor, row), np.arange(len(lv)))] = probs
     if np.isnan(t).any():
         cell = np.argwhere(np.isnan(t[..., 0]))[0] if t.ndim > 1 else []
         desc = ", ".join(f"{g}={given_levels[i][c]}" for i, (g, c) in enumerate(zip(factor.given, cell)))
@@ -106,8 +98,31 @@ def table_from_rows(spec: Spec, factor: Factor, source: str = "<spec>") -> np.nd
     return t
 
 
-def check_table(spec: Spec, factor: Factor, table: np.ndarray, where: str) -> np.ndarray:
-    """Validate a factor table: shape, finite, non-negative, rows sum to 1, no forbidden mass."""
+def _row_cells(spec: Spec, factor: Factor, row) -> list[np.ndarray]:
+    """Per given axis, the level indices a written row's ``when`` covers (all if omitted)."""
+    sel = []
+    for g, base in zip(factor.given, factor.given_axes):
+        levels = spec.axis_levels(base)
+        val = row.when.get(g)
+        vals = levels if val is None else ([val] if isinstance(val, str) else val)
+        sel.append(np.array([levels.index(v) for v in vals], dtype=np.int64))
+    return sel
+
+
+def row_of_cells(spec: Spec, factor: Factor) -> np.ndarray:
+    """Index of the written row that sets each cell (the last one covering it; -1 for none),
+    shape = the factor's given sizes."""
+    owner = np.full(factor.shape[:-1], -1, dtype=np.int64)
+    for i, row in enumerate(spec.axes[factor.axis].table or []):
+        owner[np.ix_(*_row_cells(spec, factor, row))] = i
+    return owner
+
+
+def check_table(spec: Spec, factor: Factor, table: np.ndarray, where: str,
+                rows: np.ndarray | None = None) -> np.ndarray:
+    """Validate a factor table: shape, finite, non-negative, rows sum to 1, no forbidden mass.
+
+    ``rows`` (from :func:`row_of_cells`) names the written row behind a cell with forbidden mass."""
     t = np.asarray(table, dtype=np.float64)
     if t.shape != factor.shape:
         raise SpecError(f"table has shape {t.shape}; expected {factor.shape} "
@@ -136,6 +151,10 @@ def check_table(spec: Spec, factor: Factor, table: np.ndarray, where: str) -> np
             i = tuple(np.argwhere(viol)[0])
             val = np.broadcast_to(tb, viol.shape)[i]
             desc = _union_cell(spec, union, i)
+            if rows is not None:
+                cell = tuple(i[union.index(d)] for d in tdims[:-1])
+                if rows[cell] >= 0:
+                    where = f"{where}[{rows[cell]}].probs"
             raise SpecError(f"probability {val:.3g} on a move the rules forbid ({desc}); set it to 0 or "
                             f"allow the move in axes.{factor.axis}.moves / not_sold", where=where)
     return t

@@ -315,7 +315,7 @@ def test_mass_on_a_forbidden_move_in_written_rows():
     data = good()
     data["axes"]["status"]["table"][2]["probs"] = {"prospect": 0.9, "basic": 0.05, "plus": 0.05}
     spec = parse_spec(data)
-    with pytest.raises(SpecError, match=r"spec\.toml: axes\.status\.table: probability 0\.05 on a move the rules "
+    with pytest.raises(SpecError, match=r"spec\.toml: axes\.status\.table\[2\]\.probs: probability 0\.05 on a move the rules "
                                         r"forbid \(status=prospect, market=north, next status=plus\)"):
         compile_model(spec, source="spec.toml")
 
