@@ -101,6 +101,8 @@ def specs(draw):
         earlier = order[: order.index(name)]
         pool = current_axes + [f"next.{a}" for a in earlier]
         picked = draw(st.lists(st.sampled_from(pool), unique=True, max_size=3))
+        if earlier and draw(st.booleans()):  # next values are the interesting case: favour them
+            picked.append(f"next.{draw(st.sampled_from(earlier))}")
         return list(dict.fromkeys(must + picked))
 
     # status: moves from some levels (always keeping a non-member level open, so that no cell is
