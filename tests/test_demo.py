@@ -37,6 +37,11 @@ def test_demo_end_to_end_with_server(tmp_path, capsys):
     assert (out / "report" / "report.html").is_file()
     assert "server stopped (exit status 0)" in printed
     assert "What the figures mean" in printed and "report:" in printed and "not accounting figures" in printed
+    page = (out / "report" / "report.html").read_text()
+    if not summary["tables"].startswith("tables written in the spec"):
+        # a fitted model: the report shows the fit's diagnostics, not the "absent" note
+        assert "Overlap" in page and "Where the prior dominated" in page and "join rates" in page
+        assert "No fit diagnostics" not in page
     log = (out / "server.log").read_text()
     assert '"event":"serving"' in log.replace(" ", "")
 
