@@ -38,7 +38,7 @@ from stateworth.rules.spec import Spec
 
 #: Rows used for the logistic fit at most (every k-th panel row beyond that).
 LOGIT_MAX_ROWS = 1_000_000
-ENGINES = ("duckdb",)
+ENGINES = ("duckdb", "spark")
 
 
 @dataclass(frozen=True)
@@ -46,14 +46,16 @@ class FitOptions:
     """``strength``: prior strength alpha (pseudo-moves) or ``"auto"`` (empirical Bayes per
     factor); ``forbidden``: a move the rules forbid is an ``"error"`` or is ``"drop"``-ped with a
     count; ``gaps``: a gap in an account's history is an ``"error"`` or a ``"non_member"``
-    period; ``draws``: posterior draws of every table (0 = none); ``seed`` for the draws."""
+    period; ``draws``: posterior draws of every table (0 = none); ``seed`` for the draws;
+    ``engine``: where the counting query runs, the embedded DuckDB (default) or Spark SQL
+    (:mod:`.spark`; identical counts, hence the same model hash)."""
 
     strength: float | Literal["auto"] = "auto"
     forbidden: Literal["error", "drop"] = "error"
     gaps: Literal["error", "non_member"] = "error"
     draws: int = 100
     seed: int = 0
-    engine: Literal["duckdb"] = "duckdb"
+    engine: Literal["duckdb", "spark"] = "duckdb"
     threads: int | None = None
 
 
@@ -102,8 +104,13 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
         source_rel = "banded"
     bar.update()
     bar.set_description("fit: count moves")
-    joint = count_duckdb(spec, con, source_rel)
-    first_rows = con.execute(first_rows_sql(spec, source_rel)).fetchall()
+    if options.engine == "spark":
+        from stateworth.rules.spark import count_spark
+
+        joint, first_rows = count_spark(spec, panel, band_expr, lay.col(lay.band) if lay.band else None)
+    else:
+        joint = count_duckdb(spec, con, source_rel)
+        first_rows = con.execute(first_rows_sql(spec, source_rel)).fetchall()
     bar.update()
     bar.set_description("fit: tables")
     joint, dropped = _check_moves(spec, panel, joint, source_rel, options.forbidden)
@@ -135,6 +142,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
                                 "periods": [period_label(panel.p_min), period_label(panel.p_max)]},
                 "fit_options": {"strength": options.strength, "forbidden": options.forbidden, "gaps": options.gaps,
                                 "draws": options.draws, "seed": options.seed}}
+    # the engine is not part of the metadata: both engines must give the same model (hash)
     if diag_prop:
         metadata["propensity"] = {k: diag_prop[k] for k in ("axis", "covariates", "coef", "cuts")}
     model = compile_model(spec, tables, source=source, metadata=metadata, draws=draws)

@@ -106,8 +106,10 @@ def band_of(eta: np.ndarray, cuts: np.ndarray) -> np.ndarray:
 def band_sql(fit: LogitFit, cols: list[str], cuts: np.ndarray) -> str:
     """The band as an SQL expression over covariate columns (same arithmetic order as
     :meth:`LogitFit.eta`, so every engine puts a row in the same band)."""
-    eta = repr(float(fit.coef[0])) + "".join(f" + {repr(float(b))} * {c}" for b, c in zip(fit.coef[1:], cols))
-    whens = " ".join(f"WHEN ({eta}) < {repr(float(c))} THEN {j}" for j, c in enumerate(cuts))
+    # exponent notation: a DOUBLE literal on every engine (Spark reads 0.25 as a DECIMAL)
+    lit = lambda x: "%.17e" % float(x)  # noqa: E731
+    eta = lit(fit.coef[0]) + "".join(f" + {lit(b)} * {c}" for b, c in zip(fit.coef[1:], cols))
+    whens = " ".join(f"WHEN ({eta}) < {lit(c)} THEN {j}" for j, c in enumerate(cuts))
     return f"CASE WHEN {cols[0]} IS NULL THEN NULL {whens} ELSE {len(cuts)} END"
 
 

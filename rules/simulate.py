@@ -177,6 +177,9 @@ def _atomic(path: Path, write) -> None:
     os.close(fd)
     try:
         write(tmp)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file the usual permissions
         os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):

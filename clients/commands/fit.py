@@ -31,6 +31,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="a missing month inside an account's history: an error (default) or a former-member month")
     p.add_argument("--draws", type=int, default=100, help="posterior draws of every table for intervals (default 100)")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior draws (default 0)")
+    p.add_argument("--engine", default="duckdb", choices=["duckdb", "spark"],
+                   help="where the counting query runs: the embedded DuckDB (default) or Spark SQL (pyspark; "
+                        "local mode unless STATEWORTH_SPARK_MASTER names a cluster)")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
 
 
@@ -54,7 +57,7 @@ def run(args: argparse.Namespace) -> int:
         raise PanelError("give 0 or more draws", where="--draws")
     spec = load_spec(args.spec)
     opts = FitOptions(strength=strength, forbidden="drop" if args.drop_forbidden else "error", gaps=args.gaps,
-                      draws=args.draws, seed=args.seed)
+                      draws=args.draws, seed=args.seed, engine=args.engine)
     res = fit_to_dir(spec, args.panel, args.markets, args.output, opts, source=args.spec,
                      progress=not args.quiet and sys.stderr.isatty())
     if not args.quiet:
