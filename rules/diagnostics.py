@@ -81,7 +81,7 @@ def summary_text(diag: dict) -> str:
     o = diag["overlap"]
     L.append(f"overlap: {o['cells_failing']} status cells lack moves into a member or a non-member status "
              f"({100 * o['share_failing']:.2f} % of moves); {o['cells_without_moves']} cells have no moves at all")
-    L.append("never-member join hazard per month (size; low..high size range):")
+    L.append("never-member join hazard per month at the market size (in brackets: at the high .. low size):")
     for m, h in diag["joins"]["hazard"].items():
         lo, hi = diag["joins"]["hazard_high_size"][m], diag["joins"]["hazard_low_size"][m]
         L.append(f"  {m}: {h:.5f} ({lo:.5f}..{hi:.5f})")
