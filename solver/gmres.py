@@ -1,8 +1,8 @@
 """Restarted GMRES(m) with right preconditioning, jitted end to end (``lax.while_loop``).
 
 Solves ``A x = b`` for one right-hand side; :func:`gmres` maps it over columns. Each cycle builds
-an m-step Arnoldi basis with classical Gram-Schmidt applied twice (two matrix-vector products
-with the basis instead of m dot products, and as stable as modified Gram-Schmidt), tracks the
+an m-step Arnoldi basis with modified Gram-Schmidt over the vectors built so far (its loss of
+orthogonality does not harm GMRES's convergence: Paige, Rozloznik and Strakos 2006), tracks the
 least-squares residual with Givens rotations, and stops the inner loop once the 2-norm residual
 estimate is below ``tol * ||b||_inf`` (which bounds the max-norm residual too). After each cycle
 the *true* max-norm relative residual is computed and decides convergence.
@@ -45,11 +45,16 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
         def inner(s):
             j, V, R, g, cs, sn, it_in, brk = s
             w = matvec(precond(V[j]))
-            h = V @ w
-            w = w - V.T @ h
-            h2 = V @ w
-            w = w - V.T @ h2
-            h = h + h2
+
+            # modified Gram-Schmidt over the j + 1 vectors built so far only: reading the whole
+            # (m + 1) x n basis each step, as a matrix product would, was a third of the solve
+            # time on the reference grids (the basis is memory, not flops)
+            def mgs(i, c):
+                w, h = c
+                hi = jnp.dot(V[i], w)
+                return w - hi * V[i], h.at[i].set(hi)
+
+            w, h = jax.lax.fori_loop(0, j + 1, mgs, (w, jnp.zeros(m + 1)))
             hn = jnp.linalg.norm(w)
             brk = hn <= 1e-14 * jnp.linalg.norm(h)
             V = V.at[j + 1].set(w / jnp.where(hn > 0, hn, 1.0))

@@ -72,8 +72,13 @@ class Valuer:
 
     @classmethod
     def build(cls, model, *, tol: float = 1e-10, draws: bool = True,
-              streams: Sequence[str] | None = None, chunk: int | None = None) -> "Valuer":
+              streams: Sequence[str] | None = None, chunk: int | None = None,
+              draw_tol: float = 1e-8) -> "Valuer":
         """Solve every reward stream of ``model`` (or ``streams``) to relative residual ``tol``.
+
+        Posterior draws are solved to ``draw_tol`` (default 1e-8; ``tol`` where that is looser):
+        an interval is a percentile over draws whose spread is many orders of magnitude
+        above that, and each decade of tolerance costs GMRES iterations on every draw.
 
         With ``draws`` and a non-empty ``model.draws`` ({axis: (D, *table shape)}), also solve
         the D drawn models (each draw replaces the tables of the axes it names) in one batched
@@ -93,7 +98,7 @@ class Valuer:
             if D:
                 t0 = time.perf_counter()
                 rhs = draw_rewards(model, tabs, names)
-                dv, stats = solve_draws(model, tabs, rhs, sol.values, tol=tol, batch=chunk)
+                dv, stats = solve_draws(model, tabs, rhs, sol.values, tol=max(tol, draw_tol), batch=chunk)
                 stats["seconds"] = time.perf_counter() - t0
         return cls(model, sol, dv, tol, tabs, stats)
 
