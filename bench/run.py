@@ -44,6 +44,12 @@ def bandwidth_gbps() -> float:
     return float(out.stdout.strip())
 
 
+def _write(path: Path, doc) -> None:
+    tmp = path.with_suffix(".json.tmp")
+    tmp.write_text(json.dumps(doc, indent=2))
+    os.replace(tmp, path)
+
+
 def run_one(size: str, solver: str, csr: str | None, timeout: float, devices: int | None = None) -> dict:
     cmd = [sys.executable, str(HERE / "solve_one.py"), "--size", size, "--solver", solver]
     env = dict(os.environ)
@@ -69,6 +75,8 @@ def main() -> None:
     ap.add_argument("--devices", type=int, default=2,
                     help="also solve the two largest sizes sharded over this many forced host devices")
     ap.add_argument("--skip-others", action="store_true", help="run only the solve benchmark")
+    ap.add_argument("--merge", action="store_true",
+                    help="keep the rows of bench/out/solve.json for sizes not run this time")
     args = ap.parse_args()
     OUT.mkdir(parents=True, exist_ok=True)
     sizes = args.sizes.split(",")
@@ -141,6 +149,7 @@ def main() -> None:
         if info["apply_seconds"] and info["apply_floor_seconds"]:
             info["apply_over_floor"] = info["apply_seconds"] / info["apply_floor_seconds"]
         per_size.append(info)
+        _write(OUT / "solve.json", rows + per_size)  # after each size, so a cut-short run keeps its rows
         print(f"  apply {info['apply_seconds'] * 1e3:.2f} ms vs floor {info['apply_floor_seconds'] * 1e3:.2f} ms "
               f"({info.get('apply_over_floor', float('nan')):.1f}x)"
               + (f"; {info['speedup_vs_fastest_reference']:.1f}x faster than {fastest['solver']}" if fastest else ""),
@@ -154,9 +163,12 @@ def main() -> None:
         print(f"\nstateworth growth from {a['states']:,} to {b['states']:,} states: time ~ n^{growth['time_exponent']:.2f}, "
               f"peak memory ~ n^{growth['memory_exponent']:.2f}")
     doc = rows + per_size + ([{"growth": growth}] if growth else [])
-    tmp = OUT / "solve.json.tmp"
-    tmp.write_text(json.dumps(doc, indent=2))
-    os.replace(tmp, OUT / "solve.json")
+    if args.merge and (OUT / "solve.json").exists():
+        ran = {r["states"] for r in rows if "states" in r}
+        old = [r for r in json.loads((OUT / "solve.json").read_text())
+               if "states" in r and r["states"] not in ran]
+        doc = old + doc
+    _write(OUT / "solve.json", doc)
     print(f"\nwrote {OUT / 'solve.json'}")
     if not args.skip_others:
         for extra in ("fit_bench.py", "valuation_bench.py", "serve_bench.py"):
