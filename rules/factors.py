@@ -12,7 +12,6 @@ levels of a fixed axis). A table with positive mass on a forbidden move is refus
 
 from __future__ import annotations
 
-import itertools
 from dataclasses import dataclass
 
 import numpy as np
@@ -214,7 +213,3 @@ def masked_uniform(spec: Spec, factor: Factor) -> np.ndarray:
     if (rows == 0).any():
         raise SpecError("the move rules leave a cell with no allowed next level", where=f"axes.{factor.axis}")
     return mb / rows
-
-
-def iter_cells(shape: tuple[int, ...]):
-    return itertools.product(*(range(s) for s in shape))

@@ -17,7 +17,7 @@ Also: many right-hand sides at once (``(n, k)``), warm starts (``x0``), the tran
 from __future__ import annotations
 
 import time
-from typing import Sequence
+from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -190,9 +190,6 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
     return sol
 
 
-from functools import partial  # noqa: E402
-
-
 @partial(jax.jit, static_argnames=("horizon",))
 def _horizon_jit(A, r, beta, horizon):
     return horizon_values(A.mv, r, beta, horizon)
@@ -211,8 +208,3 @@ def _gmres_jit(A, r, x0, beta, tol, restart, max_iter, pc):
 @partial(jax.jit, static_argnames=("tol", "max_iter", "stochastic", "beta"))
 def _vi_jit(A, r, x0, beta, tol, max_iter, stochastic):
     return value_iteration(A.mv, r, x0, beta, tol=tol, max_iter=max_iter, stochastic=stochastic)
-
-
-def solve_many(model, rhs: np.ndarray | Sequence, **kw) -> Solution:
-    """Alias of :func:`solve` for a stack of right-hand sides ``(n, k)``."""
-    return solve(model, rhs, **kw)

@@ -30,6 +30,18 @@ def test_drunkards_walk_fundamental_matrix(method):
     np.testing.assert_allclose(B, [[0.75, 0.25], [0.5, 0.5], [0.25, 0.75]], rtol=1e-10)
 
 
+def test_sparse_operator_matches_dense():
+    # The CSR operator (explicit references) gives the drunkard's walk N of Grinstead & Snell
+    # section 11.2 too (printed in the source).
+    import scipy.sparse as sp
+    from stateworth.operators import SparseOperator
+    Q = sp.csr_matrix(np.array([[0, 0.5, 0], [0.5, 0, 0.5], [0, 0.5, 0]]))
+    op = SparseOperator.from_scipy(Q)
+    N = solve(op, np.eye(3), beta=1.0, method="gmres", tol=1e-13).values
+    np.testing.assert_allclose(N, [[1.5, 1, 0.5], [1, 2, 1], [0.5, 1, 1.5]], rtol=1e-10)
+    np.testing.assert_allclose(np.asarray(op.transpose().mv(np.ones(3))), Q.T @ np.ones(3))
+
+
 @pytest.mark.parametrize("method", METHODS)
 def test_random_walk_episodic_values(method):
     # Sutton & Barto, Reinforcement Learning: An Introduction, 2nd ed. (2018), Example 6.2: states
