@@ -99,8 +99,10 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
     band_expr = None
     if lay.band:
         bar.set_description("fit: propensity")
-        band_expr, diag_prop = _propensity(spec, panel)
-        con.execute(f"CREATE OR REPLACE TEMP VIEW banded AS SELECT *, {band_expr} AS {lay.col(lay.band)} FROM {CODED}")
+        band_expr, next_band_expr, diag_prop = _propensity(spec, panel)
+        bc = lay.col(lay.band)
+        con.execute(f"CREATE OR REPLACE TEMP VIEW banded AS SELECT *, {band_expr} AS {bc}, {next_band_expr} AS _n{bc[1:]} "
+                    f"FROM {CODED}")
         source_rel = "banded"
     bar.update()
     bar.set_description("fit: count moves")
@@ -110,7 +112,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
         joint, first_rows = count_spark(spec, panel, band_expr, lay.col(lay.band) if lay.band else None)
     else:
         joint = count_duckdb(spec, con, source_rel)
-        first_rows = con.execute(first_rows_sql(spec, source_rel)).fetchall()
+        first_rows = con.execute(first_rows_sql(spec, source_rel, sequenced=True)).fetchall()
     bar.update()
     bar.set_description("fit: tables")
     joint, dropped = _check_moves(spec, panel, joint, source_rel, options.forbidden)
@@ -183,7 +185,9 @@ def fit_to_dir(spec: Spec, panel_path, markets_path, out_dir, options: FitOption
 # ---------------------------------------------------------------------------------------------
 
 
-def _propensity(spec: Spec, panel: Panel) -> tuple[str, dict]:
+def _propensity(spec: Spec, panel: Panel) -> tuple[str, str, dict]:
+    """(band of this row, band of the account's next row, diagnostics) as SQL over the
+    covariate columns and their next-row copies ``_w<j>``."""
     lay = panel.layout
     con = panel.con
     cols = [lay.cov_col(i) for i in range(len(lay.covariates))]
@@ -208,7 +212,7 @@ def _propensity(spec: Spec, panel: Panel) -> tuple[str, dict]:
             "smd_by_band": [[None if not np.isfinite(v) else float(v) for v in row] for row in smd],
             "smd_rule": SMD_BALANCED, "unbalanced": unbalanced,
             "note": "score = logistic P(member | covariates) over panel rows (members and former members)"}
-    return band_sql(fit, cols, cuts), diag
+    return band_sql(fit, cols, cuts), band_sql(fit, [f"_w{j}" for j in range(len(cols))], cuts), diag
 
 
 def _mask_codes(spec: Spec, axis: str, joint: JointCounts) -> np.ndarray:
@@ -247,7 +251,7 @@ def _forbidden_error(spec, panel: Panel, joint: JointCounts, j: int, axis: str, 
     for r, a in enumerate(draw):
         if joint.nxt[j, r] >= 0:
             conds.append(f"n{lay.col(a)[1:]} = {int(joint.nxt[j, r])}")
-    sql = transitions_sql(spec, source, extra=("_row",))
+    sql = transitions_sql(spec, source, extra=("_row",), sequenced=True)
     row = panel.con.execute(f"SELECT _row FROM ({sql}) x WHERE {' AND '.join(conds)} ORDER BY _row LIMIT 1").fetchone()
     frm = spec.axis_levels(axis)[joint.cur[j, grid.index(axis)]]
     to = spec.axis_levels(axis)[joint.nxt[j, draw.index(axis)]]

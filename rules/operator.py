@@ -55,13 +55,12 @@ class Plan:
         return int(np.prod(self.grid_shape, dtype=np.int64))
 
 
-def counter_index(spec, axis: str) -> np.ndarray:
-    """``idx[c, st, st']``: the next level of counter ``axis`` from level ``c`` when the status
-    moves ``st -> st'``. Events: join (non-member -> member), lapse (member -> non-member),
-    change (any status change) reset to 0; otherwise +1 (capped at the last level) while the
-    *next* status satisfies ``advance_while``, else unchanged."""
+def counter_flags(spec, axis: str) -> tuple[np.ndarray, np.ndarray]:
+    """``(reset[st, st'], adv[st'])`` of counter ``axis`` over status codes: the move
+    ``st -> st'`` resets it (events join: non-member -> member, lapse: member -> non-member,
+    change: any status change), and it advances while the *next* status is ``st'``
+    (``advance_while``; default always)."""
     ax = spec.axes[axis]
-    size = len(spec.axis_levels(axis))
     st_levels = spec.axis_levels(spec.status_axis)
     member = np.array([lv in spec.members for lv in st_levels])
     aw = ax.advance_while if ax.advance_while is not None else "always"
@@ -74,10 +73,6 @@ def counter_index(spec, axis: str) -> np.ndarray:
     else:
         adv = np.array([lv in aw for lv in st_levels])
     S = len(st_levels)
-    idx = np.zeros((size, S, S), dtype=np.int32)
-    c = np.arange(size)[:, None, None]
-    nxt = np.where(adv[None, None, :], np.minimum(c + 1, size - 1), c)
-    nxt = np.broadcast_to(nxt, (size, S, S)).copy()
     reset = np.zeros((S, S), dtype=bool)
     for ev in ax.reset_on or []:
         if ev == "join":
@@ -86,9 +81,21 @@ def counter_index(spec, axis: str) -> np.ndarray:
             reset |= member[:, None] & (~member)[None, :]
         elif ev == "change":
             reset |= ~np.eye(S, dtype=bool)
+    return reset, adv
+
+
+def counter_index(spec, axis: str) -> np.ndarray:
+    """``idx[c, st, st']``: the next level of counter ``axis`` from level ``c`` when the status
+    moves ``st -> st'``: 0 on a reset (:func:`counter_flags`); otherwise +1 (capped at the last
+    level) while the next status advances it, else unchanged."""
+    size = len(spec.axis_levels(axis))
+    reset, adv = counter_flags(spec, axis)
+    S = len(adv)
+    c = np.arange(size)[:, None, None]
+    nxt = np.where(adv[None, None, :], np.minimum(c + 1, size - 1), c)
+    nxt = np.broadcast_to(nxt, (size, S, S)).astype(np.int32)
     nxt[:, reset] = 0
-    idx[...] = nxt
-    return idx
+    return nxt
 
 
 def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:

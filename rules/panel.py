@@ -92,7 +92,9 @@ class Panel:
 
     Columns of ``coded``: ``_row`` (data row in the file, 1-based; 0 for gap fill rows), ``account``,
     ``p`` (period index ``12 * year + month - 1``), ``g<i>`` (level code of axis at grid position i,
-    for observed axes), ``v<j>`` (covariates, DOUBLE), ``revenue`` (DOUBLE or NULL)."""
+    for observed axes), ``v<j>`` (covariates, DOUBLE), ``revenue`` (DOUBLE or NULL), and the
+    account-history columns of :func:`sequence_sql` (previous and next row), computed once in
+    the same pass that codes the file."""
 
     con: object  # duckdb.DuckDBPyConnection
     layout: Layout
@@ -120,17 +122,22 @@ def parse_period(text: str, where: str) -> int:
 
 
 def connect(threads: int | None = None):
+    """An in-memory DuckDB connection. Insertion order is not preserved (sorts and window
+    passes run about a third faster); every query whose order matters says ORDER BY, and a
+    CSV's row numbers are fixed once when it is read (:func:`_source`)."""
     import duckdb
 
     con = duckdb.connect(":memory:")
     if threads:
         con.execute(f"SET threads = {int(threads)}")
-    con.execute("SET preserve_insertion_order = true")
+    con.execute("SET preserve_insertion_order = false")
     return con
 
 
 def _source(path: str, con) -> tuple[str, str]:
-    """A DuckDB relation text for a CSV/Parquet file, with a 1-based data row number ``_row``."""
+    """A DuckDB relation text for a CSV/Parquet file, with a 1-based data row number ``_row``.
+    Parquet row numbers come from the reader; a CSV is read once into a temporary table with
+    insertion order preserved for that statement, so its row numbers are the file's."""
     p = Path(path)
     if not p.is_file():
         raise PanelError("no such file; give the path to a CSV or Parquet file", where=str(path))
@@ -139,7 +146,19 @@ def _source(path: str, con) -> tuple[str, str]:
     if suffix in (".parquet", ".pq"):
         return f"(SELECT file_row_number + 1 AS _row, * EXCLUDE (file_row_number) FROM read_parquet({lit}, file_row_number = true))", "parquet"
     if suffix in (".csv", ".txt", ".tsv"):
-        return f"(SELECT row_number() OVER () AS _row, * FROM read_csv({lit}, header = true, all_varchar = true))", "csv"
+        import duckdb
+
+        name = f"_csv_{abs(hash(str(p.resolve()))) % 10 ** 12}"
+        order = con.execute("SELECT current_setting('preserve_insertion_order')").fetchone()[0]
+        con.execute("SET preserve_insertion_order = true")
+        try:
+            con.execute(f"CREATE OR REPLACE TEMP TABLE {name} AS SELECT row_number() OVER () AS _row, * "
+                        f"FROM read_csv({lit}, header = true, all_varchar = true)")
+        except duckdb.Error as e:
+            raise PanelError(f"cannot be read as CSV ({str(e).splitlines()[0]})", where=str(path)) from None
+        finally:
+            con.execute(f"SET preserve_insertion_order = {'true' if order else 'false'}")
+        return name, "csv"
     raise PanelError(f"unknown file type '{p.suffix}'; use .csv or .parquet", where=str(path))
 
 
@@ -206,11 +225,7 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
 
     for c in ["account", "period"] + list(lay.observed):
         example(f"{_q(c)} IS NULL", c, lambda v: "empty value; every row needs one")
-    ptype = cols["period"].upper()
-    if ptype.startswith("DATE") or ptype.startswith("TIMESTAMP"):
-        per = f"strftime({_q('period')}, '%Y-%m')"
-    else:
-        per = f"CAST({_q('period')} AS VARCHAR)"
+    per = _period_text(cols)
     example(f"{_q('period')} IS NOT NULL AND NOT regexp_matches({per}, '{PERIOD_RE}')", "period",
             lambda v: f"period '{v}' is not YYYY-MM (e.g. 2024-01)")
     for ax in lay.observed:
@@ -233,26 +248,71 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
         example(f"TRY_CAST({_q('revenue')} AS DOUBLE) < 0 OR NOT isfinite(TRY_CAST({_q('revenue')} AS DOUBLE))", "revenue",
                 lambda v: f"revenue {v} is negative or not finite; revenue is money received, >= 0")
     run_checks()
-    if probs:
-        return probs, con
-    pexpr = f"CAST(substr({per}, 1, 4) AS INTEGER) * 12 + CAST(substr({per}, 6, 2) AS INTEGER) - 1"
-    con.execute(f"CREATE OR REPLACE TEMP VIEW raw_p AS SELECT *, {pexpr} AS _p FROM raw")
     return probs, con
 
 
+def _period_text(cols: dict[str, str]) -> str:
+    """The period column as ``YYYY-MM`` text (a DATE or TIMESTAMP column is formatted)."""
+    ptype = cols["period"].upper()
+    if ptype.startswith("DATE") or ptype.startswith("TIMESTAMP"):
+        return f"strftime({_q('period')}, '%Y-%m')"
+    return f"CAST({_q('period')} AS VARCHAR)"
+
+
+def _period_index(cols: dict[str, str]) -> str:
+    """``12 * year + month - 1`` of a valid period, NULL otherwise."""
+    per = _period_text(cols)
+    return (f"CASE WHEN regexp_matches({per}, '{PERIOD_RE}') THEN CAST(substr({per}, 1, 4) AS INTEGER) * 12 "
+            f"+ CAST(substr({per}, 6, 2) AS INTEGER) - 1 END")
+
+
+def _coded_flags(con, lay: Layout, cols: dict[str, str]) -> bool:
+    """True when the coded panel shows any problem :func:`panel_problems` reports (a NULL code
+    is a missing value or an unknown level, a NULL period index an empty or malformed
+    period): one scan of the coded table instead of one of the file, so a clean panel is read
+    once. The detailed messages come from :func:`panel_problems` only when this says so."""
+    conds = ["account IS NULL", "p IS NULL"] + [f"{lay.col(a)} IS NULL" for a in lay.observed]
+    conds.append(f"{lay.col(lay.status)} = {lay.code(lay.status, lay.never_member)}")
+    conds += [f"{lay.cov_col(j)} IS NULL OR NOT isfinite({lay.cov_col(j)})" for j in range(len(lay.covariates))]
+    conds.append("revenue < 0 OR NOT isfinite(revenue)")
+    if any(_first(con, f"SELECT {', '.join(f'count_if({c})' for c in conds)} FROM {CODED}")):
+        return True
+    if "revenue" in cols and cols["revenue"].upper() in ("VARCHAR", "TEXT", "STRING"):
+        return bool(_first(con, f"SELECT count_if({_q('revenue')} IS NOT NULL AND TRIM({_q('revenue')}) <> '' AND "
+                                f"TRY_CAST({_q('revenue')} AS DOUBLE) IS NULL) FROM raw")[0])
+    return False
+
+
+W_ACCOUNT = "PARTITION BY account ORDER BY p"
+
+
+def sequence_sql(lay: Layout, source: str, base: list[str]) -> str:
+    """``base`` columns of ``source`` plus each row's neighbours in its account's history, from
+    one window pass (PARTITION BY account ORDER BY p): ``_pp`` / ``_np`` the previous / next
+    row's period (NULL at the ends), ``_sp`` the previous status code, ``_n<i>`` the next code of
+    every observed random axis, ``_w<j>`` the next row's covariates, ``_f<i>`` the previous code
+    of every fixed axis. Validation, first rows and the counting query all read these columns,
+    so the panel is sorted by account once."""
+    spec = lay.spec
+    w = f"OVER ({W_ACCOUNT})"
+    cols = [f"LAG(p) {w} AS _pp", f"LEAD(p) {w} AS _np", f"LAG({lay.col(lay.status)}) {w} AS _sp"]
+    cols += [f"LEAD({lay.col(a)}) {w} AS _n{lay.col(a)[1:]}" for a in spec.draw_order if a in lay.observed]
+    cols += [f"LEAD({lay.cov_col(j)}) {w} AS _w{j}" for j in range(len(lay.covariates))]
+    cols += [f"LAG({lay.col(a)}) {w} AS _f{lay.col(a)[1:]}" for a in lay.observed if spec.axes[a].kind == "fixed"]
+    return f"SELECT {', '.join(base)}, {', '.join(cols)} FROM {source}"
+
+
 def history_problems(con, lay: Layout, path: str) -> tuple[list[tuple[str, str]], bool]:
-    """Per-account history checks in one window pass over the coded panel: a second row for the
+    """Per-account history checks over the sequenced panel (one scan): a second row for the
     same account and period, a fixed axis that changes. Returns (problems, has gaps)."""
     fixed = [a for a in lay.observed if lay.spec.axes[a].kind == "fixed"]
-    W = "OVER (PARTITION BY account ORDER BY p, _row)"
-    lag = ", ".join([f"LAG(p) {W} AS pp"] + [f"LAG({lay.col(a)}) {W} AS f{i}" for i, a in enumerate(fixed)])
-    conds = ["pp = p"] + [f"f{i} <> {lay.col(a)}" for i, a in enumerate(fixed)] + ["p - pp > 1"]
-    counts = _first(con, f"SELECT {', '.join(f'count_if({c})' for c in conds)} FROM (SELECT *, {lag} FROM {CODED})")
+    conds = ["_pp = p"] + [f"_f{lay.col(a)[1:]} <> {lay.col(a)}" for a in fixed] + ["p - _pp > 1"]
+    counts = _first(con, f"SELECT {', '.join(f'count_if({c})' for c in conds)} FROM {CODED}")
     probs = []
     for k, (cond, n) in enumerate(zip(conds[:-1], counts[:-1])):
         if not n:
             continue
-        row = _first(con, f"SELECT _row, p FROM (SELECT *, {lag} FROM {CODED}) WHERE {cond} ORDER BY _row LIMIT 1")
+        row = _first(con, f"SELECT _row, p FROM {CODED} WHERE {cond} ORDER BY _row LIMIT 1")
         more = f" ({n:,} rows in all)" if n > 1 else ""
         if k == 0:
             probs.append((f"{path}: row {row[0]}, columns account, period",
@@ -267,8 +327,7 @@ def history_problems(con, lay: Layout, path: str) -> tuple[list[tuple[str, str]]
 
 def gap_example(con) -> tuple[int, int, int] | None:
     """(row, previous period, period) of the first gap in an account's history, or None."""
-    return _first(con, f"SELECT _row, pp, p FROM (SELECT _row, p, LAG(p) OVER (PARTITION BY account ORDER BY p) AS pp "
-                       f"FROM {CODED}) WHERE p - pp > 1 ORDER BY _row LIMIT 1")
+    return _first(con, f"SELECT _row, _pp, p FROM {CODED} WHERE p - _pp > 1 ORDER BY _row LIMIT 1")
 
 
 def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) -> Panel:
@@ -280,19 +339,29 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
         raise PanelError(f"panels are monthly (period YYYY-MM); the spec's model.period is '{spec.model.period}'",
                          where="model.period")
     path = str(path)
-    probs, con = panel_problems(spec, path, con)
-    if probs:
-        raise _panel_error(probs)
+    con = con or connect()
     lay = Layout.of(spec)
-    cols = _columns(con, "raw", path)
-    sel = ["_row", "account", "_p AS p"]
+    rel, _ = _source(path, con)
+    cols = _columns(con, rel, path)
+    if any(c not in cols for c in ["account", "period"] + list(lay.observed) + list(lay.covariates)):
+        raise _panel_error(panel_problems(spec, path, con)[0])
+    con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
+    # code first, validate on the codes: a clean file is read once, a bad one twice
+    sel = ["_row", "account", f"{_period_index(cols)} AS p"]
     for ax in lay.observed:
         sel.append(f"{_case_codes(_q(ax), spec.axis_levels(ax))} AS {lay.col(ax)}")
     for i, c in enumerate(lay.covariates):
-        sel.append(f"CAST({_q(c)} AS DOUBLE) AS {lay.cov_col(i)}")
+        sel.append(f"TRY_CAST({_q(c)} AS DOUBLE) AS {lay.cov_col(i)}")
     has_rev = "revenue" in cols
     sel.append(f"TRY_CAST({_q('revenue')} AS DOUBLE) AS revenue" if has_rev else "CAST(NULL AS DOUBLE) AS revenue")
-    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS SELECT {', '.join(sel)} FROM raw_p")
+    base = [x.rsplit(" AS ", 1)[-1] for x in sel]
+    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS "
+                + sequence_sql(lay, f"(SELECT {', '.join(sel)} FROM raw) c", base))
+    if _coded_flags(con, lay, cols):
+        probs, _ = panel_problems(spec, path, con)
+        if not probs:  # pragma: no cover - the two checks disagree: a bug, not bad input
+            raise RuntimeError("panel flagged by the coded scan but no detailed problem found")
+        raise _panel_error(probs)
     filled = 0
     hist, has_gaps = history_problems(con, lay, path)
     if hist:
@@ -307,33 +376,35 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
         if not lay.former_levels:
             raise PanelError("gaps cannot be filled as non-member periods: the status axis has no former-member "
                              "level", where=f"{path}: row {gap[0]}, column period")
-        filled = fill_gaps(con, lay)
-    n, acc, pmin, pmax = _first(con, f"SELECT count(*), count(DISTINCT account), min(p), max(p) FROM {CODED}")
+        filled = fill_gaps(con, lay, base)
+    n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
                  p_max=int(pmax), filled=filled, has_revenue=has_rev)
 
 
-def fill_gaps(con, lay: Layout) -> int:
+def fill_gaps(con, lay: Layout, base: list[str]) -> int:
     """Insert a former-member row for every missing period inside an account's history (the
-    first former-member level; chance axes, covariates and revenue unknown). Returns the count."""
+    first former-member level; chance axes, covariates and revenue unknown), then recompute
+    the history columns. ``base``: the coded columns. Returns the number of rows added."""
     former = lay.code(lay.status, lay.former_levels[0])
-    cols = [r[0] for r in con.execute(f"DESCRIBE {CODED}").fetchall()]
     fixed = {lay.col(a) for a in lay.observed if lay.spec.axes[a].kind == "fixed"}
     out = []
-    for c in cols:
+    for c in base:
         if c == "_row":
             out.append("0 AS _row")
         elif c in ("account",) or c in fixed:
             out.append(c)
         elif c == "p":
-            out.append("UNNEST(range(pp + 1, p)) AS p")
+            out.append("UNNEST(range(_pp + 1, p)) AS p")
         elif c == lay.col(lay.status):
             out.append(f"{former} AS {c}")
         else:
             out.append(f"NULL AS {c}")
     before = _first(con, f"SELECT count(*) FROM {CODED}")[0]
-    con.execute(f"INSERT INTO {CODED} SELECT {', '.join(out)} FROM (SELECT *, LAG(p) OVER (PARTITION BY account "
-                f"ORDER BY p) AS pp FROM {CODED}) WHERE p - pp > 1")
+    con.execute(f"CREATE OR REPLACE TEMP TABLE _filled AS SELECT {', '.join(base)} FROM {CODED} UNION ALL "
+                f"SELECT {', '.join(out)} FROM {CODED} WHERE p - _pp > 1")
+    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS " + sequence_sql(lay, "_filled", base))
+    con.execute("DROP TABLE _filled")
     return int(_first(con, f"SELECT count(*) FROM {CODED}")[0] - before)
 
 
@@ -444,8 +515,8 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     if probs:
         return probs
     # tracked accounts by market and period must fit inside the addressable size
-    firsts = con.execute(f"SELECT {lay.col(lay.market)}, fp, count(*) FROM (SELECT account, min(p) AS fp, "
-                         f"min({lay.col(lay.market)}) AS {lay.col(lay.market)} FROM {CODED} GROUP BY account) GROUP BY 1, 2").fetchall()
+    firsts = con.execute(f"SELECT {lay.col(lay.market)}, p, count(*) FROM {CODED} WHERE _pp IS NULL "
+                         "GROUP BY 1, 2").fetchall()
     tracked = np.zeros((M, T))
     for code, fp, n in firsts:
         tracked[code, int(fp) - panel.p_min] += n
