@@ -550,7 +550,8 @@ def _fit_diagnostics_html(diag: Mapping[str, Any]) -> str | None:
         parts.append(f"<p>Standardised mean difference of each covariate between members and former members "
                      f"within each band of '{e(prop['axis'])}'; |SMD| below {prop.get('smd_rule', 0.1)} is commonly "
                      f"read as balanced. Unbalanced: {e(', '.join(prop.get('unbalanced') or []) or 'none')}.</p>"
-                     + _table(["band"] + list(prop["covariates"]), rows, [False] + [True] * len(prop["covariates"])))
+                     + _table(["band"] + list(prop.get("terms", prop["covariates"])), rows,
+                              [False] + [True] * len(prop.get("terms", prop["covariates"]))))
     else:
         parts.append("<p>The spec has no propensity band axis, so no balance check was made: the causal "
                      "reading rests on the other axes alone capturing what drives membership.</p>")

@@ -90,7 +90,7 @@ def summary_text(diag: dict) -> str:
         L.append(f"propensity band '{pr['axis']}': logistic on {', '.join(pr['covariates'])} "
                  f"({pr['rows_used']:,} rows, {pr['iterations']} Newton steps)")
         for b, row in enumerate(pr["smd_by_band"]):
-            vals = ", ".join(f"{c} {v:+.3f}" if v is not None else f"{c} n/a" for c, v in zip(pr["covariates"], row))
+            vals = ", ".join(f"{c} {v:+.3f}" if v is not None else f"{c} n/a" for c, v in zip(pr.get("terms", pr["covariates"]), row))
             L.append(f"  band {pr['bands'][b]}: standardised mean difference {vals}")
         L.append(f"  covariates with |SMD| >= {pr['smd_rule']} within some band: {', '.join(pr['unbalanced']) or 'none'}")
     L.append("Estimates rest on the stated causal assumptions (no unmeasured confounding given the state); "

@@ -33,7 +33,7 @@ from stateworth.rules.estimate import FactorFit, allowed_mask, posterior
 from stateworth.rules.factors import Factor, factors_of, move_mask
 from stateworth.rules.joins import first_row_table, hazard_summary, join_counts, prospect_rows
 from stateworth.rules.panel import CODED, Panel, load_markets, load_panel, period_label
-from stateworth.rules.propensity import SMD_BALANCED, band_cuts, band_of, band_sql, fit_logit, smd_by_band
+from stateworth.rules.propensity import SMD_BALANCED, Design, band_cuts, band_of, band_sql, fit_logit, smd_by_band
 from stateworth.rules.spec import Spec
 
 #: Rows used for the logistic fit at most (every k-th panel row beyond that).
@@ -146,7 +146,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
                                 "draws": options.draws, "seed": options.seed}}
     # the engine is not part of the metadata: both engines must give the same model (hash)
     if diag_prop:
-        metadata["propensity"] = {k: diag_prop[k] for k in ("axis", "covariates", "coef", "cuts")}
+        metadata["propensity"] = {k: diag_prop[k] for k in ("axis", "covariates", "terms", "levels", "coef", "cuts")}
     model = compile_model(spec, tables, source=source, metadata=metadata, draws=draws)
     bar.update()
     bar.close()
@@ -196,23 +196,29 @@ def _propensity(spec: Spec, panel: Panel) -> tuple[str, str, dict]:
     k = max(1, -(-n // LOGIT_MAX_ROWS))
     sample = con.execute(f"SELECT {', '.join(cols)}, CASE WHEN {lay.col(lay.status)} IN ({', '.join(map(str, mem))}) "
                          f"THEN 1 ELSE 0 END AS y FROM {CODED} WHERE {cols[0]} IS NOT NULL AND _row % {k} = 0").fetchnumpy()
-    x = np.column_stack([np.asarray(sample[c], dtype=np.float64) for c in cols])
+    design = Design.of(lay.covariates, panel.cov_levels)
+    x = design.matrix(np.column_stack([np.asarray(sample[c], dtype=np.float64) for c in cols]))
     y = np.asarray(sample["y"], dtype=np.float64)
-    fit = fit_logit(x, y, lay.covariates, where=f"{panel.path}: columns {', '.join(lay.covariates)}")
+    fit = fit_logit(x, y, design.names, where=f"{panel.path}: columns {', '.join(lay.covariates)}")
     B = len(spec.axis_levels(lay.band))
     eta = fit.eta(x)
     cuts = band_cuts(eta, B)
     band = band_of(eta, cuts)
     smd = smd_by_band(x, y, band, B)
-    unbalanced = [c for j, c in enumerate(lay.covariates) if np.nanmax(np.abs(smd[:, j])) >= SMD_BALANCED] \
+    unbalanced = [c for j, c in enumerate(design.names) if np.nanmax(np.abs(smd[:, j])) >= SMD_BALANCED] \
         if np.isfinite(smd).any() else []
-    diag = {"axis": lay.band, "covariates": list(lay.covariates), "bands": spec.axis_levels(lay.band),
+    diag = {"axis": lay.band, "covariates": list(lay.covariates), "terms": list(design.names),
+            "levels": {c: list(v) for c, v in panel.cov_levels.items()}, "bands": spec.axis_levels(lay.band),
             "coef": [float(c) for c in fit.coef], "se": [float(s) for s in fit.se], "iterations": fit.iterations,
             "converged": fit.converged, "cuts": [float(c) for c in cuts], "rows_used": int(len(y)),
             "smd_by_band": [[None if not np.isfinite(v) else float(v) for v in row] for row in smd],
             "smd_rule": SMD_BALANCED, "unbalanced": unbalanced,
-            "note": "score = logistic P(member | covariates) over panel rows (members and former members)"}
-    return band_sql(fit, cols, cuts), band_sql(fit, [f"_w{j}" for j in range(len(cols))], cuts), diag
+            "note": "score = logistic P(member | covariates) over panel rows (members and former members); "
+                    "coef and smd_by_band follow terms (intercept first in coef); a categorical covariate "
+                    "enters as indicators against its first value"}
+    nxt = [f"_w{j}" for j in range(len(cols))]
+    return (band_sql(fit, design.sql(cols), cuts, null_col=cols[0]),
+            band_sql(fit, design.sql(nxt), cuts, null_col=nxt[0]), diag)
 
 
 def _mask_codes(spec: Spec, axis: str, joint: JointCounts) -> np.ndarray:

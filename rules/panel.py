@@ -9,7 +9,8 @@ Panel columns (CSV with a header row, or Parquet), one row per account per perio
   do not appear in a panel);
 * one column per ``fixed`` axis and per ``chance`` axis (e.g. ``market``, ``engagement``),
   except a propensity band axis, which is derived from its covariates;
-* the covariate columns a propensity band axis names (numeric);
+* the covariate columns a propensity band axis names (numbers; text for those it lists as
+  ``categorical``, at most :data:`MAX_CATEGORIES` distinct values);
 * optional ``revenue`` (money per period, a number >= 0).
 
 Counters (tenure, months since lapse) and cycles (calendar month) are *derived* from the
@@ -42,6 +43,8 @@ GAP_POLICIES = ("error", "non_member")
 PERIOD_RE = r"^[0-9]{4}-(0[1-9]|1[0-2])$"
 #: Internal table names in the DuckDB connection.
 CODED = "coded"
+#: Distinct values a categorical covariate may take.
+MAX_CATEGORIES = 50
 
 
 @dataclass(frozen=True)
@@ -55,6 +58,7 @@ class Layout:
     band: str | None  # the propensity band axis, derived
     covariates: tuple[str, ...]
     derived: tuple[str, ...]  # counters and cycles
+    categorical: tuple[str, ...] = ()  # covariates that are categorical (coded 0.. in sorted order)
 
     @classmethod
     def of(cls, spec: Spec) -> "Layout":
@@ -65,7 +69,8 @@ class Layout:
                          if spec.axes[n].kind in ("fixed", "status", "chance") and n != band)
         derived = tuple(n for n in spec.grid_order if spec.axes[n].kind in ("counter", "cycle"))
         cov = tuple(spec.axes[band].propensity.covariates) if band else ()
-        return cls(spec, spec.status_axis, market, observed, band, cov, derived)
+        cat = tuple(spec.axes[band].propensity.categorical) if band else ()
+        return cls(spec, spec.status_axis, market, observed, band, cov, derived, cat)
 
     def col(self, axis: str) -> str:
         """The internal code column of an axis (engine-neutral identifier)."""
@@ -92,7 +97,8 @@ class Panel:
 
     Columns of ``coded``: ``_row`` (data row in the file, 1-based; 0 for gap fill rows), ``account``,
     ``p`` (period index ``12 * year + month - 1``), ``g<i>`` (level code of axis at grid position i,
-    for observed axes), ``v<j>`` (covariates, DOUBLE), ``revenue`` (DOUBLE or NULL), and the
+    for observed axes), ``v<j>`` (covariates, DOUBLE; a categorical one as the index of its
+    value in ``cov_levels``), ``revenue`` (DOUBLE or NULL), and the
     account-history columns of :func:`sequence_sql` (previous and next row), computed once in
     the same pass that codes the file."""
 
@@ -106,6 +112,7 @@ class Panel:
     filled: int = 0  # rows added by the gap policy
     has_revenue: bool = False
     notes: list[str] = field(default_factory=list)
+    cov_levels: dict[str, list[str]] = field(default_factory=dict)  # categorical covariate -> values
 
     def period_label(self, p: int) -> str:
         return period_label(p)
@@ -239,6 +246,10 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
                       f"comes from the market-size table); use a former-member level ({', '.join(lay.former_levels) or 'none declared'}) "
                       "for accounts that lapsed")
     for c in lay.covariates:
+        if c in lay.categorical:
+            example(f"{_q(c)} IS NULL OR TRIM(CAST({_q(c)} AS VARCHAR)) = ''", c,
+                    lambda v: "empty value; a categorical covariate needs a value on every row")
+            continue
         example(f"{_q(c)} IS NULL OR TRY_CAST({_q(c)} AS DOUBLE) IS NULL OR NOT isfinite(TRY_CAST({_q(c)} AS DOUBLE))", c,
                 lambda v, c=c: f"covariate value '{v}' is not a finite number")
     if "revenue" in cols:
@@ -273,7 +284,8 @@ def _coded_flags(con, lay: Layout, cols: dict[str, str]) -> bool:
     once. The detailed messages come from :func:`panel_problems` only when this says so."""
     conds = ["account IS NULL", "p IS NULL"] + [f"{lay.col(a)} IS NULL" for a in lay.observed]
     conds.append(f"{lay.col(lay.status)} = {lay.code(lay.status, lay.never_member)}")
-    conds += [f"{lay.cov_col(j)} IS NULL OR NOT isfinite({lay.cov_col(j)})" for j in range(len(lay.covariates))]
+    conds += [f"{lay.cov_col(j)} IS NULL" if c in lay.categorical else
+              f"{lay.cov_col(j)} IS NULL OR NOT isfinite({lay.cov_col(j)})" for j, c in enumerate(lay.covariates)]
     conds.append("revenue < 0 OR NOT isfinite(revenue)")
     if any(_first(con, f"SELECT {', '.join(f'count_if({c})' for c in conds)} FROM {CODED}")):
         return True
@@ -350,8 +362,12 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
     sel = ["_row", "account", f"{_period_index(cols)} AS p"]
     for ax in lay.observed:
         sel.append(f"{_case_codes(_q(ax), spec.axis_levels(ax))} AS {lay.col(ax)}")
+    cov_levels = {c: _categories(con, c, path) for c in lay.categorical}
     for i, c in enumerate(lay.covariates):
-        sel.append(f"TRY_CAST({_q(c)} AS DOUBLE) AS {lay.cov_col(i)}")
+        if c in lay.categorical:
+            sel.append(f"{_case_codes(_q(c), cov_levels[c])} AS {lay.cov_col(i)}")
+        else:
+            sel.append(f"TRY_CAST({_q(c)} AS DOUBLE) AS {lay.cov_col(i)}")
     has_rev = "revenue" in cols
     sel.append(f"TRY_CAST({_q('revenue')} AS DOUBLE) AS revenue" if has_rev else "CAST(NULL AS DOUBLE) AS revenue")
     base = [x.rsplit(" AS ", 1)[-1] for x in sel]
@@ -379,7 +395,19 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
         filled = fill_gaps(con, lay, base)
     n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
-                 p_max=int(pmax), filled=filled, has_revenue=has_rev)
+                 p_max=int(pmax), filled=filled, has_revenue=has_rev, cov_levels=cov_levels)
+
+
+def _categories(con, column: str, path: str) -> list[str]:
+    """The distinct non-empty values of a categorical covariate, in sorted order (the first is
+    the reference level of the score)."""
+    vals = [r[0] for r in con.execute(
+        f"SELECT DISTINCT CAST({_q(column)} AS VARCHAR) AS v FROM raw WHERE {_q(column)} IS NOT NULL AND "
+        f"TRIM(CAST({_q(column)} AS VARCHAR)) <> '' ORDER BY v LIMIT {MAX_CATEGORIES + 1}").fetchall()]
+    if len(vals) > MAX_CATEGORIES:
+        raise PanelError(f"the categorical covariate has more than {MAX_CATEGORIES} distinct values; group rare "
+                         "values, or make it numeric and drop it from propensity.categorical", where=f"{path}: column {column}")
+    return vals
 
 
 def fill_gaps(con, lay: Layout, base: list[str]) -> int:

@@ -103,14 +103,55 @@ def band_of(eta: np.ndarray, cuts: np.ndarray) -> np.ndarray:
     return np.searchsorted(cuts, eta, side="right").astype(np.int64)
 
 
-def band_sql(fit: LogitFit, cols: list[str], cuts: np.ndarray) -> str:
-    """The band as an SQL expression over covariate columns (same arithmetic order as
-    :meth:`LogitFit.eta`, so every engine puts a row in the same band)."""
+def band_sql(fit: LogitFit, cols: list[str], cuts: np.ndarray, null_col: str | None = None) -> str:
+    """The band as an SQL expression over the design columns ``cols`` (column names or SQL
+    expressions, one per coefficient after the intercept; same arithmetic order as
+    :meth:`LogitFit.eta`, so every engine puts a row in the same band). NULL where ``null_col``
+    (default ``cols[0]``) is NULL: a gap row has no covariates."""
     # exponent notation: a DOUBLE literal on every engine (Spark reads 0.25 as a DECIMAL)
     lit = lambda x: "%.17e" % float(x)  # noqa: E731
     eta = lit(fit.coef[0]) + "".join(f" + {lit(b)} * {c}" for b, c in zip(fit.coef[1:], cols))
     whens = " ".join(f"WHEN ({eta}) < {lit(c)} THEN {j}" for j, c in enumerate(cuts))
-    return f"CASE WHEN {cols[0]} IS NULL THEN NULL {whens} ELSE {len(cuts)} END"
+    return f"CASE WHEN {null_col or cols[0]} IS NULL THEN NULL {whens} ELSE {len(cuts)} END"
+
+
+@dataclass(frozen=True)
+class Design:
+    """The score's design columns from the panel's covariates: a numeric covariate is one
+    column; a categorical one with values ``v_0 < v_1 < ...`` (sorted) is one indicator per
+    value after the first (the reference). ``names[i]`` is ``"age"`` or ``"channel=web"``;
+    ``source[i]`` the covariate index and ``code[i]`` the value code (-1 for numeric)."""
+
+    names: tuple[str, ...]
+    source: tuple[int, ...]
+    code: tuple[int, ...]
+
+    @classmethod
+    def of(cls, covariates: tuple[str, ...], levels: dict[str, list[str]]) -> "Design":
+        names, source, code = [], [], []
+        for j, c in enumerate(covariates):
+            if c in levels:
+                for k, v in enumerate(levels[c][1:], start=1):
+                    names.append(f"{c}={v}")
+                    source.append(j)
+                    code.append(k)
+            else:
+                names.append(c)
+                source.append(j)
+                code.append(-1)
+        return cls(tuple(names), tuple(source), tuple(code))
+
+    def matrix(self, v: np.ndarray) -> np.ndarray:
+        """``(n, len(names))`` design rows from covariate rows ``v`` (n, covariates) as coded in
+        the panel (numbers, or value codes of categorical covariates)."""
+        v = np.asarray(v, dtype=np.float64)
+        cols = [v[:, j] if k < 0 else (v[:, j] == k).astype(np.float64) for j, k in zip(self.source, self.code)]
+        return np.column_stack(cols) if cols else np.zeros((len(v), 0))
+
+    def sql(self, cols: list[str]) -> list[str]:
+        """The design columns as SQL over the covariate columns ``cols`` (one per covariate)."""
+        return [cols[j] if k < 0 else f"(CASE WHEN {cols[j]} = {k} THEN 1.0 ELSE 0.0 END)"
+                for j, k in zip(self.source, self.code)]
 
 
 def smd_by_band(x: np.ndarray, member: np.ndarray, band: np.ndarray, bands: int) -> np.ndarray:

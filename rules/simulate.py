@@ -11,7 +11,8 @@ and stays in it (as a former member after lapsing); never-members never appear.
 Covariates of a propensity band axis confound membership: covariate j of a row is
 ``(-1)^j (band - (B - 1) / 2) + 0.15 z`` with z a standard normal drawn once per person
 (standardised units), so the band, which drives joining, lapsing and re-joining in the true
-tables, is what they measure. The fit orders bands by membership score, so give band levels in
+tables, is what they measure. A categorical covariate reports the same measurement in classes
+(:data:`CATEGORY_NAMES`, cut at :data:`CATEGORY_EDGES`). The fit orders bands by membership score, so give band levels in
 increasing order of the propensity to be a member.
 Revenue is the plan's list price from the first reward stream that has prices (0 otherwise).
 
@@ -35,6 +36,9 @@ from stateworth.rules.operator import counter_index
 from stateworth.rules.panel import Layout, parse_period, period_label
 
 COVARIATE_NOISE = 0.15
+#: Classes of a simulated categorical covariate and the cuts of the underlying measurement.
+CATEGORY_NAMES = ["low", "mid", "high", "top"]
+CATEGORY_EDGES = [-0.75, 0.0, 0.75]
 
 
 @dataclass
@@ -132,7 +136,13 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
         # a person's measurement error is their own and lasts (age, distance do not jitter monthly)
         noise = rng.standard_normal((N, len(lay.covariates)))
         for j, c in enumerate(lay.covariates):
-            arrays[c] = pa.array((-1) ** j * centre + COVARIATE_NOISE * noise[cols["account"], j])
+            x = (-1) ** j * centre + COVARIATE_NOISE * noise[cols["account"], j]
+            if c in lay.categorical:
+                # the same measurement, reported in coarse named classes
+                code = np.digitize(x, CATEGORY_EDGES)
+                arrays[c] = pa.DictionaryArray.from_arrays(pa.array(code.astype(np.int32)), pa.array(CATEGORY_NAMES))
+            else:
+                arrays[c] = pa.array(x)
     arrays["revenue"] = pa.array(cols["revenue"])
     panel = pa.table(arrays)
     m_levels = spec.axis_levels(lay.market)

@@ -66,11 +66,14 @@ class TableRow(_Strict):
 
 class Propensity(_Strict):
     """A propensity band: the axis's levels are quantile bands of a logistic score of being a
-    member, fitted on the panel's numeric ``covariates`` (columns of the panel). The band of a
-    panel row is derived from its covariates when fitting; the axis is then an ordinary chance
-    axis whose kernel is estimated like any other."""
+    member, fitted on the panel's ``covariates`` (columns of the panel: numbers, except those
+    also listed in ``categorical``, whose levels are read from the panel and enter the score as
+    indicators against the first level in sorted order). The band of a panel row is derived
+    from its covariates when fitting; the axis is then an ordinary chance axis whose kernel is
+    estimated like any other."""
 
     covariates: list[str]
+    categorical: list[str] = Field(default_factory=list)
 
 
 class Axis(_Strict):
@@ -396,6 +399,10 @@ def check_spec(spec: Spec) -> list[str]:
         for c in cov:
             if c in spec.axes or c in ("account", "period", "revenue"):
                 p.append(f"{where}: '{c}' is an axis or reserved panel column; name a covariate column")
+        for c in spec.axes[name].propensity.categorical:
+            if c not in cov:
+                p.append(f"axes.{name}.propensity.categorical: '{c}' is not in covariates ({_fmt(cov)}); list it "
+                         "there too")
         if len(levels.get(name, [])) < 2:
             p.append(f"axes.{name}.levels: a propensity band axis needs at least 2 bands")
 

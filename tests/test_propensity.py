@@ -66,3 +66,94 @@ def test_spec_key_validation():
     clash = {**BASE, "axes": {**BASE["axes"], "band": {**BASE["axes"]["band"], "propensity": {"covariates": ["market"]}}}}
     with pytest.raises(SpecError, match="propensity.covariates"):
         parse_spec(clash)
+
+
+# --- categorical covariates -------------------------------------------------------------------
+
+def _cat_spec() -> str:
+    from test_simulate import BAND_SPEC
+
+    old = 'propensity = { covariates = ["age", "distance_km"] }'
+    assert old in BAND_SPEC
+    return BAND_SPEC.replace(old, 'propensity = { covariates = ["age", "channel"], categorical = ["channel"] }')
+
+
+def test_categorical_covariate_fit_matches_statsmodels(tmp_path):
+    import tomllib
+
+    import pandas as pd
+    import statsmodels.api as sm
+
+    from stateworth.rules.fit import FitOptions, fit_panel
+    from stateworth.rules.simulate import CATEGORY_NAMES, simulate_panel, write_simulation
+
+    spec = parse_spec(tomllib.loads(_cat_spec()))
+    sim = simulate_panel(spec, 3000, 10, seed=2)
+    p, m = write_simulation(sim, tmp_path / "p.parquet")
+    res = fit_panel(spec, str(p), str(m), FitOptions(draws=0))
+    prop = res.diagnostics["propensity"]
+    ref_levels = sorted(CATEGORY_NAMES)
+    assert prop["levels"] == {"channel": ref_levels}
+    assert prop["terms"] == ["age"] + [f"channel={v}" for v in ref_levels[1:]]
+    assert len(prop["smd_by_band"][0]) == len(prop["terms"])
+    # Reference: statsmodels.api.Logit (REFERENCES.md, general-purpose reference libraries) on the
+    # same panel rows with indicator columns for channel against its first sorted value, computed
+    # here by the library.
+    df = sim.panel.to_pandas()
+    y = (df["status"].astype(str) == "basic").astype(float).to_numpy()
+    ch = df["channel"].astype(str)
+    X = pd.DataFrame({"age": df["age"].astype(float)})
+    for v in ref_levels[1:]:
+        X[f"channel={v}"] = (ch == v).astype(float)
+    ref = sm.Logit(y, sm.add_constant(X.to_numpy())).fit(disp=0)
+    np.testing.assert_allclose(prop["coef"], ref.params, rtol=1e-6, atol=1e-8)
+    assert res.model.metadata["propensity"]["terms"] == prop["terms"]
+
+
+def test_band_sql_equals_numpy_bands_with_categorical_terms():
+    import duckdb
+
+    from stateworth.rules.propensity import Design, LogitFit, band_sql
+
+    rng = np.random.default_rng(3)
+    v = np.column_stack([rng.normal(size=500), rng.integers(0, 3, 500)])
+    design = Design.of(("age", "plan"), {"plan": ["a", "b", "c"]})
+    assert design.names == ("age", "plan=b", "plan=c")
+    x = design.matrix(v)
+    fit = LogitFit(design.names, np.array([0.2, 1.1, -0.7, 0.4]), np.ones(4), 3, True)
+    eta = fit.eta(x)
+    cuts = band_cuts(eta, 3)
+    con = duckdb.connect()
+    con.execute("CREATE TABLE t (i INTEGER, v0 DOUBLE, v1 INTEGER)")
+    con.executemany("INSERT INTO t VALUES (?, ?, ?)", [(i, float(a), int(b)) for i, (a, b) in enumerate(v)])
+    got = con.execute(f"SELECT {band_sql(fit, design.sql(['v0', 'v1']), cuts, null_col='v0')} FROM t ORDER BY i").fetchnumpy()
+    np.testing.assert_array_equal(next(iter(got.values())), band_of(eta, cuts))
+
+
+def test_categorical_key_and_panel_errors(tmp_path):
+    import tomllib
+
+    import pandas as pd
+
+    from stateworth.errors import PanelError
+    from stateworth.rules.panel import MAX_CATEGORIES, load_panel
+    from stateworth.rules.simulate import simulate_panel, write_simulation
+
+    d = tomllib.loads(_cat_spec())
+    bad = tomllib.loads(_cat_spec())
+    bad["axes"]["band"]["propensity"]["categorical"] = ["region"]
+    with pytest.raises(SpecError, match=r"axes.band.propensity.categorical: 'region' is not in covariates"):
+        parse_spec(bad)
+    spec = parse_spec(d)
+    sim = simulate_panel(spec, 300, 4, seed=1)
+    p, _ = write_simulation(sim, tmp_path / "p.csv")
+    df = pd.read_csv(p, dtype=str)
+    df.loc[4, "channel"] = ""
+    df.to_csv(tmp_path / "empty.csv", index=False)
+    with pytest.raises(PanelError, match=r"row 5, column channel: empty value; a categorical covariate"):
+        load_panel(spec, str(tmp_path / "empty.csv"))
+    df = pd.read_csv(p, dtype=str)
+    df["channel"] = [f"c{i % (MAX_CATEGORIES + 1)}" for i in range(len(df))]
+    df.to_csv(tmp_path / "many.csv", index=False)
+    with pytest.raises(PanelError, match=rf"column channel: the categorical covariate has more than {MAX_CATEGORIES}"):
+        load_panel(spec, str(tmp_path / "many.csv"))
