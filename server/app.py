@@ -22,7 +22,7 @@ from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
 
 from stateworth.errors import StateworthError
-from stateworth.server.interceptors import AccessInterceptor, AuthInterceptor
+from stateworth.server.interceptors import CallInterceptor
 from stateworth.server.metrics import Metrics, serve_metrics
 from stateworth.server.service import AdminServicer, Limits, ValuationServicer
 from stateworth.server.store import ModelStore, Snapshot
@@ -99,8 +99,7 @@ class Server:
                 ("grpc.max_send_message_length", config.max_message_bytes),
                 ("grpc.so_reuseport", 0)]
         self.grpc = grpc.server(futures.ThreadPoolExecutor(max_workers=config.threads, thread_name_prefix="stateworth-rpc"),
-                                interceptors=[AccessInterceptor(self.metrics),
-                                              AuthInterceptor(config.token, config.admin_token)],
+                                interceptors=[CallInterceptor(self.metrics, config.token, config.admin_token)],
                                 options=opts, maximum_concurrent_rpcs=config.max_concurrent)
         valuation_service_pb2_grpc.add_ValuationServiceServicer_to_server(
             ValuationServicer(self.store, self.pool, Limits(max_batch=config.max_batch)), self.grpc)

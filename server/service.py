@@ -141,20 +141,24 @@ class ValuationServicer(vgrpc.ValuationServiceServicer):
         served = self._resolve(request, context)
         v = served.valuer
         stream, horizon, level = cv.stream_of(served, request.stream), cv.horizon_of(request), cv.level_of(request)
-        served.unit(stream)  # validates the stream
-        coords = cv.coords(request.state, "state")
-        self._horizon(served, stream, horizon, level, context)
-        i = served.quick_index(coords)
+        unit = served.unit(stream)  # validates the stream
+        # the map itself is looked up (no dict copy); anything off goes the long way, whose
+        # errors name the field, axis or level
+        i = served.quick_index(request.state.levels)
         if i is None:
-            i = v.index(coords)  # raises the QueryError naming the axis or level
-        idx = np.array([i], dtype=np.int64)
-        val = float(served.column(stream)[i] if horizon is None else v.values(idx, stream, horizon)[0])
+            i = v.index(cv.coords(request.state, "state"))
+        self._horizon(served, stream, horizon, level, context)
         interval = None
-        if level is not None and v.has_intervals:
-            lo, hi = cv.percentile_interval(v.draw_values(idx, stream, horizon), level)
-            interval = (float(lo[0]), float(hi[0]))
+        if horizon is None and level is None:
+            val = float(served.column(stream)[i])
+        else:
+            idx = np.array([i], dtype=np.int64)
+            val = float(served.column(stream)[i] if horizon is None else v.values(idx, stream, horizon)[0])
+            if level is not None and v.has_intervals:
+                lo, hi = cv.percentile_interval(v.draw_values(idx, stream, horizon), level)
+                interval = (float(lo[0]), float(hi[0]))
         resp = pb.GetValueResponse(name=served.resource, version=served.version, stream=stream,
-                                   value=cv.figure(val, served.unit(stream), interval, level), state_index=i,
+                                   value=cv.figure(val, unit, interval, level), state_index=i,
                                    caution=cv.CAUTION_TEXT)
         if horizon is not None:
             resp.horizon = horizon

@@ -24,7 +24,7 @@ import time
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Mapping
 
 from stateworth.errors import StateworthError
 from stateworth.server.errors import LoadError, NotFoundError, UnavailableError, invalid
@@ -90,10 +90,11 @@ class Served:
             u = units[stream] = self.valuer.unit(stream)
         return u
 
-    def quick_index(self, coords: dict[str, str]) -> int | None:
+    def quick_index(self, coords: Mapping[str, str]) -> int | None:
         """Flat index of a full coordinate given by level names, or None when anything is off
         (the caller then asks the valuation layer, whose error names the axis or level). The
-        hot path of single-value calls: plain dictionary lookups, no arrays."""
+        hot path of single-value calls: plain dictionary lookups, no arrays; ``coords`` may be
+        the request's protobuf map itself."""
         names, lookups, strides = self._index
         if len(coords) != len(names):
             return None

@@ -90,3 +90,30 @@ def test_plaintext_client_cannot_use_the_tls_port(secure):
     with cl.Client(srv.target, token="query-secret-1", timeout=3, retries=1, backoff=0.01) as c:
         with pytest.raises(cl.Unavailable):
             c.list_models()
+
+
+def _rpc_lines(srv: ServerProcess, method: str) -> list[dict]:
+    return [e for e in list(srv.events) if e.get("event") == "rpc" and e.get("method") == method]
+
+
+def test_each_refused_call_has_one_access_line_and_the_same_handler_serves_again(secure):
+    """Refusals go through the same per-method handlers as allowed calls (built once, kept):
+    every call, refused or not, gets exactly one access line with its own code, and a refusal
+    does not stick to the method."""
+    import time
+
+    srv, cert = secure
+    method = "/stateworth.v1.ValuationService/GetModel"
+    before = len(_rpc_lines(srv, method))
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="guess") as bad, \
+            cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="query-secret-1") as good:
+        for _ in range(3):
+            with pytest.raises(cl.Unauthenticated):
+                bad.get_model(MODEL)
+            assert good.get_model(MODEL).name == f"models/{MODEL}"
+    end = time.monotonic() + 10
+    while len(_rpc_lines(srv, method)) < before + 6 and time.monotonic() < end:
+        time.sleep(0.05)
+    time.sleep(0.2)  # a doubled line would arrive by now
+    codes = [e["code"] for e in _rpc_lines(srv, method)[before:]]
+    assert codes == ["UNAUTHENTICATED", "OK"] * 3
