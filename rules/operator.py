@@ -203,7 +203,7 @@ def _apply(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
 
 def _apply_transpose(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
     n = plan.size
-    tr = jax.linear_transpose(partial(_apply_single, plan, arrays), jax.ShapeDtypeStruct((n,), jnp.float64))
+    tr = jax.linear_transpose(partial(_apply_single, plan, arrays), jax.ShapeDtypeStruct((n,), y.dtype))
     return _columns(lambda v: tr(v)[0], y)
 
 
@@ -228,6 +228,12 @@ class GridOperator:
 
     def transpose(self) -> "GridOperator":
         return GridOperator(self.plan, self.arrays, not self.transposed)
+
+    def astype(self, dtype) -> "GridOperator":
+        """The same operator with its factor tables in ``dtype`` (float32 for the inner solves of
+        mixed precision); applies then take and return vectors of that type."""
+        arrays = {k: (v.astype(dtype) if jnp.issubdtype(v.dtype, jnp.floating) else v) for k, v in self.arrays.items()}
+        return GridOperator(self.plan, arrays, self.transposed)
 
     def with_tables(self, tables: dict) -> "GridOperator":
         """The same structure with other factor tables (a changed or drawn model)."""

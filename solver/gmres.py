@@ -8,7 +8,10 @@ estimate is below ``tol * ||b||_inf`` (which bounds the max-norm residual too). 
 the *true* max-norm relative residual is computed and decides convergence.
 
 Right preconditioning (``A M^{-1} y = b, x = M^{-1} y``) keeps the residual of the original
-system, so the stopping rule needs no correction.
+system, so the stopping rule needs no correction. ``flexible=True`` is FGMRES (Saad 1993): the
+preconditioned vectors ``z_j = M^{-1} v_j`` are kept (m more vectors) and ``x = x0 + Z y``, so
+the Arnoldi relation ``A Z = V H`` holds even when M^{-1} is not exactly one linear map (a
+float32 preconditioner); it also saves one preconditioner call per cycle.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ from stateworth.solver.result import Status
 
 
 def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array, tol: float,
-               restart: int, max_iter: int, precond_cost: int = 0):
+               restart: int, max_iter: int, precond_cost: int = 0, flexible: bool = False):
     n = b.shape[0]
     m = restart
     bnorm = jnp.maximum(jnp.max(jnp.abs(b)), jnp.finfo(jnp.float64).tiny)
@@ -33,18 +36,22 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
         r = b - matvec(x)
         beta0 = jnp.linalg.norm(r)
         V = jnp.zeros((m + 1, n)).at[0].set(r / jnp.where(beta0 > 0, beta0, 1.0))
+        Z = jnp.zeros((m if flexible else 0, n))
         R = jnp.zeros((m + 1, m))
         g = jnp.zeros(m + 1).at[0].set(beta0)
         cs = jnp.zeros(m)
         sn = jnp.zeros(m)
 
         def inner_cond(s):
-            j, V, R, g, cs, sn, it_in, brk = s
+            j, V, Z, R, g, cs, sn, it_in, brk = s
             return (j < m) & (jnp.abs(g[j]) > target) & (it + it_in < max_iter) & ~brk
 
         def inner(s):
-            j, V, R, g, cs, sn, it_in, brk = s
-            w = matvec(precond(V[j]))
+            j, V, Z, R, g, cs, sn, it_in, brk = s
+            z = precond(V[j])
+            if flexible:
+                Z = Z.at[j].set(z)
+            w = matvec(z)
 
             # modified Gram-Schmidt over the j + 1 vectors built so far only: reading the whole
             # (m + 1) x n basis each step, as a matrix product would, was a third of the solve
@@ -80,21 +87,22 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
             gj = g[j]
             g = g.at[j].set(c_new * gj).at[j + 1].set(-s_new * gj)
             R = R.at[:, j].set(col)
-            return j + 1, V, R, g, cs, sn, it_in + 1, brk
+            return j + 1, V, Z, R, g, cs, sn, it_in + 1, brk
 
-        j, V, R, g, cs, sn, it_in, brk = jax.lax.while_loop(
-            inner_cond, inner, (0, V, R, g, cs, sn, 0, False))
+        j, V, Z, R, g, cs, sn, it_in, brk = jax.lax.while_loop(
+            inner_cond, inner, (0, V, Z, R, g, cs, sn, 0, False))
         # solve the j x j triangular system; pad the unused part with the identity
         Rm = R[:m, :m]
         used = jnp.arange(m) < j
         Rm = jnp.where(used[:, None] & used[None, :], Rm, jnp.eye(m))
         gy = jnp.where(used, g[:m], 0.0)
         y = jax.scipy.linalg.solve_triangular(Rm, gy, lower=False)
-        x = x + precond(V[:m].T @ y)
+        x = x + (Z.T @ y if flexible else precond(V[:m].T @ y))
         res = jnp.max(jnp.abs(b - matvec(x))) / bnorm
         # a full cycle that gains less than 10 % has hit the rounding floor: stop, say so
         stuck = (brk & (j == 0)) | ((j == m) & (res > 0.9 * prev))
-        return x, it + it_in, applies + (it_in + 1) * (1 + precond_cost) + 1, res, stuck
+        calls = it_in if flexible else it_in + 1  # preconditioner calls this cycle
+        return x, it + it_in, applies + it_in + 2 + calls * precond_cost, res, stuck
 
     def outer_cond(state):
         x, it, applies, res, stuck = state
@@ -109,7 +117,8 @@ def _gmres_one(matvec: Callable, precond: Callable, b: jax.Array, x0: jax.Array,
 
 
 def gmres(matvec: Callable, b: jax.Array, x0: jax.Array, *, tol: float, restart: int = 40,
-          max_iter: int = 2000, precond: Callable | None = None, precond_cost: int = 0):
+          max_iter: int = 2000, precond: Callable | None = None, precond_cost: int = 0,
+          flexible: bool = False):
     """Solve ``A x = b`` column by column for ``b`` of shape ``(n, k)``.
 
     ``precond_cost`` is the number of operator applies one preconditioner call makes (for the
@@ -119,7 +128,7 @@ def gmres(matvec: Callable, b: jax.Array, x0: jax.Array, *, tol: float, restart:
 
     def one(args):
         bj, xj = args
-        return _gmres_one(matvec, precond, bj, xj, tol, restart, max_iter, precond_cost)
+        return _gmres_one(matvec, precond, bj, xj, tol, restart, max_iter, precond_cost, flexible)
 
     x, it, ap, res, st = jax.lax.map(one, (b.T, x0.T))
     return x.T, jnp.sum(it), jnp.sum(ap), jnp.max(res), jnp.max(st)

@@ -177,6 +177,10 @@ class TwoLevel:
     def tree_unflatten(cls, aux, children):
         return cls(aux[0], children[0], aux[1])
 
+    def astype(self, dtype) -> "TwoLevel":
+        """The same preconditioner with its coarse inverse in ``dtype``."""
+        return TwoLevel(self.coarse, self.inv.astype(dtype), self.smooth)
+
     def restrict(self, r: jax.Array) -> jax.Array:
         c = self.coarse
         x = r.reshape(c.split_shape)
@@ -226,3 +230,14 @@ def two_level(model, beta: float, *, transpose: bool = False, smooth: int = 4,
     n_fixed = sum(1 for a in model.grid.axes if a.kind == "fixed")
     coarse = Coarse(model.grid.shape, n_fixed, bins, K)
     return TwoLevel(coarse, inv, smooth)
+
+
+def low_precision(pc, A, A32, beta):
+    """``v -> M^{-1} v``: in float64 when ``A32`` is None, else with the preconditioner's applies
+    and coarse inverse in float32 (``A32 = A.astype(float32)``), result back in float64. The
+    preconditioner only has to approximate A^{-1}; float32's 1e-7 is far below its own error."""
+    if A32 is None:
+        return lambda v: pc.apply(A.mv, beta, v)
+    pc32 = pc.astype(jnp.float32)
+    b32 = jnp.asarray(beta, dtype=jnp.float32)
+    return lambda v: pc32.apply(A32.mv, b32, v.astype(jnp.float32)).astype(v.dtype)

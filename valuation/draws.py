@@ -29,7 +29,7 @@ from stateworth.errors import ConvergenceError, QueryError
 from stateworth.rules.rewards import period_cash, transition_amounts
 from stateworth.solver.gmres import gmres
 from stateworth.solver.horizon import horizon_values
-from stateworth.solver.preconditioner import two_level
+from stateworth.solver.preconditioner import low_precision, two_level
 
 #: grids up to this many states solve each draw densely
 DENSE_MAX = 800
@@ -117,7 +117,7 @@ def _batch_size(n: int, k: int, restart: int, D: int) -> int:
     states with 16 draws vectorised; on accelerators as many as ``BATCH_BYTES`` allow."""
     if jax.default_backend() == "cpu":
         return 1
-    per = 8 * n * k * (restart + 8)
+    per = 8 * n * k * (2 * restart + 8)
     return int(max(1, min(D, BATCH_BYTES // max(per, 1))))
 
 
@@ -134,8 +134,10 @@ def _gmres_draws(op, pc, stacked, rhs, x0, beta, *, tol, restart, max_iter, batc
             return v - beta * A.mv(v)
 
         if has_pc:
+            # the solver's float32 preconditioner under flexible GMRES, as in a single solve
             return gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter,
-                         precond=lambda v: pc.apply(A.mv, beta, v), precond_cost=pc.cost)
+                         precond=low_precision(pc, A, A.astype(jnp.float32), beta), precond_cost=pc.cost,
+                         flexible=True)
         x, it, ap, res, st = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter)
         return x, it, ap, res, st
 
