@@ -13,6 +13,11 @@ a call count and a time limit. Measured:
   adjoint solve and the table gradients) and a second call for another cohort (solves, no
   compile), and a cached repeat.
 
+Beside each unary phase: the CPU time per call of the server process and of this load generator
+(Linux /proc and os.times), which together bound the throughput on a small machine. The server's
+log (one JSON access line per call) goes to bench/out/serve-server.log, not through a pipe this
+process would have to read line by line while it is generating load.
+
 Aims (issue 6, on the 2-core development machine): p99 under 5 ms at 8 callers, at least
 10^6 values/s batch, no error. Writes bench/out/serve.json.
 
@@ -51,6 +56,32 @@ def build_artifact(model_dir: Path) -> dict:
     save_model(m, model_dir / "reference-360k")
     return {"name": m.name, "version": m.version, "states": m.n_states, "compile_s": time.perf_counter() - t0,
             "axes": {a.name: list(a.levels) for a in m.grid.axes}}
+
+
+def process_cpu(pid: int) -> float | None:
+    """User + system CPU seconds of process ``pid`` so far (None where /proc is not there)."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    except OSError:
+        return None
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def own_cpu() -> float:
+    t = os.times()
+    return t.user + t.system
+
+
+def with_cpu(pid: int, phase, *args) -> dict:
+    """Run ``phase(*args)`` and add the server's and this process's CPU microseconds per call."""
+    s0, c0 = process_cpu(pid), own_cpu()
+    r = phase(*args)
+    s1, c1 = process_cpu(pid), own_cpu()
+    n = max(r["calls"], 1)
+    r["load_generator_cpu_us_per_call"] = (c1 - c0) / n * 1e6
+    if s0 is not None and s1 is not None:
+        r["server_cpu_us_per_call"] = (s1 - s0) / n * 1e6
+    return r
 
 
 def percentile(a: list[float], q: float) -> float:
@@ -203,22 +234,27 @@ def main() -> int:
     t0 = time.perf_counter()
     cmd = [sys.executable, "-m", "stateworth", "serve", str(model_dir), "--port", "0", "--threads",
            str(args.threads)]
-    proc = subprocess.Popen(cmd, stderr=subprocess.PIPE, text=True, env=dict(os.environ, PYTHONUNBUFFERED="1"),
+    log_path = OUT / "serve-server.log"
+    log_file = open(log_path, "w")
+    proc = subprocess.Popen(cmd, stderr=log_file, stdout=subprocess.DEVNULL, env=dict(os.environ, PYTHONUNBUFFERED="1"),
                             cwd=ROOT)
     port = None
-    for line in proc.stderr:
-        try:
-            ev = json.loads(line)
-        except ValueError:
-            continue
-        if ev.get("event") == "listening":
-            port = ev["port"]
-        if ev.get("event") == "serving":
-            break
-    else:
-        raise SystemExit("the server exited before serving")
-    drain = threading.Thread(target=lambda: [None for _ in proc.stderr], daemon=True)  # keep the pipe empty
-    drain.start()
+    with open(log_path) as reader:
+        while True:
+            line = reader.readline()
+            if not line:
+                if proc.poll() is not None:
+                    raise SystemExit(f"the server exited before serving; see {log_path}")
+                time.sleep(0.05)
+                continue
+            try:
+                ev = json.loads(line)
+            except ValueError:
+                continue
+            if ev.get("event") == "listening":
+                port = ev["port"]
+            if ev.get("event") == "serving":
+                break
     ready_s = time.perf_counter() - t0
     target = f"127.0.0.1:{port}"
     print(f"server ready in {ready_s:.1f} s (load, verify and solve) on {target}", flush=True)
@@ -232,12 +268,14 @@ def main() -> int:
               "unary": [], "aims": {"p99_ms_at_8": 5.0, "batch_values_per_s": 1e6}}
     try:
         for callers in (1, 8, 32):
-            r = unary_phase_aio(target, model, states, callers, args.calls, args.seconds)
+            r = with_cpu(proc.pid, unary_phase_aio, target, model, states, callers, args.calls, args.seconds)
             result["unary"].append(r)
             print(f"GetValue x{callers:2d} (aio callers):    {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms"
-                  f"  p99 {r['p99_ms']:.2f} ms  errors {r['errors']}", flush=True)
+                  f"  p99 {r['p99_ms']:.2f} ms  errors {r['errors']}  CPU/call: server "
+                  f"{r.get('server_cpu_us_per_call', float('nan')):.0f} us, load generator "
+                  f"{r['load_generator_cpu_us_per_call']:.0f} us", flush=True)
         for callers in (1, 8):
-            r = unary_phase(target, model, states, callers, args.calls // 2, args.seconds / 2)
+            r = with_cpu(proc.pid, unary_phase, target, model, states, callers, args.calls // 2, args.seconds / 2)
             r["load_generator"] = "stateworth Client, one thread per caller"
             result.setdefault("unary_client_threads", []).append(r)
             print(f"GetValue x{callers:2d} (Client threads): {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms"
@@ -253,6 +291,7 @@ def main() -> int:
     finally:
         proc.send_signal(signal.SIGTERM)
         result["server_exit_code"] = proc.wait(60)
+        log_file.close()
     result["machine"]["load_average_at_end"] = list(os.getloadavg())
     u8 = next(r for r in result["unary"] if r["callers"] == 8)
     errors = (sum(r["errors"] for r in result["unary"] + result.get("unary_client_threads", []))
