@@ -9,6 +9,9 @@ a call count and a time limit. Measured:
   grpc.aio channels (a light load generator); a second, shorter run at 1 and 8 callers uses the
   stateworth Client from one thread per caller (what a Python service embedding it would see);
 * values per second through the batch form (BatchGetValues, 10^5 states per call, level codes);
+* the same 8-caller load against a bare grpcio server in another process (``--bare-server``: the
+  same request parsing and response bytes, no model, interceptor, log or metrics): what Python
+  gRPC alone costs per call on this machine, the floor under the service's figure;
 * the marginal-transition table (ListMarginalValues, top 20): the first call (compiles the
   adjoint solve and the table gradients) and a second call for another cohort (solves, no
   compile), and a cached repeat.
@@ -218,26 +221,36 @@ def marginal_phase(target: str, model: str, axes: dict) -> dict:
     return out
 
 
-def main() -> int:
-    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--calls", type=int, default=4000, help="unary calls per concurrency level (bound)")
-    ap.add_argument("--seconds", type=float, default=20.0, help="time bound per phase")
-    ap.add_argument("--threads", type=int, default=4, help="server threads (fewer contend less for the GIL)")
-    args = ap.parse_args()
-    OUT.mkdir(parents=True, exist_ok=True)
-    model_dir = OUT / "serve-models"
-    shutil.rmtree(model_dir, ignore_errors=True)
-    model_dir.mkdir(parents=True)
-    info = build_artifact(model_dir)
-    print(f"reference model {info['name']} {info['version']}: {info['states']:,} states", flush=True)
+def bare_server(response_file: str, threads: int) -> int:
+    """A grpcio server answering GetValue with fixed response bytes (the floor measurement)."""
+    from concurrent import futures
 
-    t0 = time.perf_counter()
-    cmd = [sys.executable, "-m", "stateworth", "serve", str(model_dir), "--port", "0", "--threads",
-           str(args.threads)]
-    log_path = OUT / "serve-server.log"
+    import grpc
+
+    from stateworth.v1 import valuation_service_pb2 as pb
+
+    body = Path(response_file).read_bytes()
+    done = threading.Event()
+    handler = grpc.method_handlers_generic_handler("stateworth.v1.ValuationService", {
+        "GetValue": grpc.unary_unary_rpc_method_handler(lambda request, context: body,
+                                                        request_deserializer=pb.GetValueRequest.FromString)})
+    server = grpc.server(futures.ThreadPoolExecutor(max_workers=threads), handlers=[handler])
+    port = server.add_insecure_port("127.0.0.1:0")
+    server.start()
+    signal.signal(signal.SIGTERM, lambda *a: done.set())
+    print(json.dumps({"event": "listening", "port": port}), file=sys.stderr, flush=True)
+    print(json.dumps({"event": "serving"}), file=sys.stderr, flush=True)
+    done.wait()
+    server.stop(1).wait()
+    return 0
+
+
+def start_server(cmd: list[str], log_path: Path) -> tuple[subprocess.Popen, int]:
+    """Start a server subprocess logging to ``log_path``; wait for its ``serving`` line."""
     log_file = open(log_path, "w")
     proc = subprocess.Popen(cmd, stderr=log_file, stdout=subprocess.DEVNULL, env=dict(os.environ, PYTHONUNBUFFERED="1"),
                             cwd=ROOT)
+    log_file.close()  # the child holds its own descriptor
     port = None
     with open(log_path) as reader:
         while True:
@@ -254,7 +267,29 @@ def main() -> int:
             if ev.get("event") == "listening":
                 port = ev["port"]
             if ev.get("event") == "serving":
-                break
+                return proc, int(port)
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--calls", type=int, default=4000, help="unary calls per concurrency level (bound)")
+    ap.add_argument("--seconds", type=float, default=20.0, help="time bound per phase")
+    ap.add_argument("--threads", type=int, default=4, help="server threads (fewer contend less for the GIL)")
+    ap.add_argument("--bare-server", metavar="RESPONSE_FILE", help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.bare_server:
+        return bare_server(args.bare_server, args.threads)
+    OUT.mkdir(parents=True, exist_ok=True)
+    model_dir = OUT / "serve-models"
+    shutil.rmtree(model_dir, ignore_errors=True)
+    model_dir.mkdir(parents=True)
+    info = build_artifact(model_dir)
+    print(f"reference model {info['name']} {info['version']}: {info['states']:,} states", flush=True)
+
+    t0 = time.perf_counter()
+    cmd = [sys.executable, "-m", "stateworth", "serve", str(model_dir), "--port", "0", "--threads",
+           str(args.threads)]
+    proc, port = start_server(cmd, OUT / "serve-server.log")
     ready_s = time.perf_counter() - t0
     target = f"127.0.0.1:{port}"
     print(f"server ready in {ready_s:.1f} s (load, verify and solve) on {target}", flush=True)
@@ -280,6 +315,30 @@ def main() -> int:
             result.setdefault("unary_client_threads", []).append(r)
             print(f"GetValue x{callers:2d} (Client threads): {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms"
                   f"  p99 {r['p99_ms']:.2f} ms  errors {r['errors']}", flush=True)
+        import grpc
+
+        from stateworth.v1 import valuation_service_pb2 as pb
+        from stateworth.v1 import valuation_service_pb2_grpc as vgrpc
+
+        with grpc.insecure_channel(target) as ch:
+            sample = vgrpc.ValuationServiceStub(ch).GetValue(
+                pb.GetValueRequest(name=f"models/{model}", state=pb.State(levels=states[0])), timeout=10)
+        (OUT / "serve-response.bin").write_bytes(sample.SerializeToString())
+        bare, bare_port = start_server([sys.executable, str(Path(__file__).resolve()), "--bare-server",
+                                        str(OUT / "serve-response.bin"), "--threads", str(args.threads)],
+                                       OUT / "serve-bare.log")
+        try:
+            r = with_cpu(bare.pid, unary_phase_aio, f"127.0.0.1:{bare_port}", model, states, 8, args.calls,
+                         args.seconds)
+        finally:
+            bare.send_signal(signal.SIGTERM)
+            bare.wait(30)
+        r["server"] = "bare grpcio, fixed response bytes"
+        result["bare_grpc"] = r
+        print(f"GetValue x 8 bare grpcio server:  {r['calls_per_s']:8.0f} calls/s  p50 {r['p50_ms']:.2f} ms"
+              f"  p99 {r['p99_ms']:.2f} ms  errors {r['errors']}  CPU/call: server "
+              f"{r.get('server_cpu_us_per_call', float('nan')):.0f} us, load generator "
+              f"{r['load_generator_cpu_us_per_call']:.0f} us", flush=True)
         b = batch_phase(target, model, {a: len(lv) for a, lv in axes.items()}, 100_000, 30, args.seconds)
         result["batch"] = b
         print(f"BatchGetValues: {b['values_per_s']:,.0f} values/s ({b['states_per_call']:,} per call), "
@@ -291,7 +350,7 @@ def main() -> int:
     finally:
         proc.send_signal(signal.SIGTERM)
         result["server_exit_code"] = proc.wait(60)
-        log_file.close()
+
     result["machine"]["load_average_at_end"] = list(os.getloadavg())
     u8 = next(r for r in result["unary"] if r["callers"] == 8)
     errors = (sum(r["errors"] for r in result["unary"] + result.get("unary_client_threads", []))
