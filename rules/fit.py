@@ -194,8 +194,11 @@ def _propensity(spec: Spec, panel: Panel) -> tuple[str, str, dict]:
     mem = [lay.code(lay.status, m) for m in spec.members]
     n = con.execute(f"SELECT count(*) FROM {CODED} WHERE {cols[0]} IS NOT NULL").fetchone()[0]
     k = max(1, -(-n // LOGIT_MAX_ROWS))
-    sample = con.execute(f"SELECT {', '.join(cols)}, CASE WHEN {lay.col(lay.status)} IN ({', '.join(map(str, mem))}) "
+    sample = con.execute(f"SELECT _row, {', '.join(cols)}, CASE WHEN {lay.col(lay.status)} IN ({', '.join(map(str, mem))}) "
                          f"THEN 1 ELSE 0 END AS y FROM {CODED} WHERE {cols[0]} IS NOT NULL AND _row % {k} = 0").fetchnumpy()
+    # the engine returns rows in any order; the fit's sums (hence its last bits) must not depend on it
+    order = np.argsort(np.asarray(sample["_row"]), kind="stable")
+    sample = {c: np.asarray(v)[order] for c, v in sample.items()}
     design = Design.of(lay.covariates, panel.cov_levels)
     x = design.matrix(np.column_stack([np.asarray(sample[c], dtype=np.float64) for c in cols]))
     y = np.asarray(sample["y"], dtype=np.float64)

@@ -87,14 +87,26 @@ def fit_logit(x: np.ndarray, y: np.ndarray, names: tuple[str, ...] = (), *, max_
 
 
 def band_cuts(eta: np.ndarray, bands: int) -> np.ndarray:
-    """The ``bands - 1`` cut points of the score: midpoints between neighbouring sorted scores
-    at the quantiles j / bands, so that no row sits on a cut."""
+    """The ``bands - 1`` cut points of the score: midpoints between neighbouring distinct sorted
+    scores at the quantiles j / bands, so that no row sits on a cut (a cut on a row's score would
+    put it in either band depending on the last bit of the arithmetic, and so on the engine).
+    Where the score at a quantile is tied, the cut moves to the gap above the tied value (below
+    it at the top); cuts never decrease, and two equal cuts leave a band empty."""
     s = np.sort(np.asarray(eta, dtype=np.float64))
     n = len(s)
-    cuts = []
+    u = np.unique(s)
+    mids = 0.5 * (u[:-1] + u[1:])  # every gap between distinct scores
+    cuts: list[float] = []
     for j in range(1, bands):
         i = min(max(int(round(j * n / bands)), 1), n - 1)
-        cuts.append(0.5 * (s[i - 1] + s[i]))
+        if len(mids) == 0:
+            cuts.append(float(s[i]))
+            continue
+        g = int(np.searchsorted(u, s[i], side="left"))  # u[g] == s[i]; gap g-1 lies below it
+        g = g - 1 if s[i - 1] < s[i] else min(g, len(mids) - 1)
+        if cuts and mids[g] < cuts[-1]:
+            g = int(np.searchsorted(mids, cuts[-1], side="left"))
+        cuts.append(float(mids[g]))
     return np.array(cuts)
 
 

@@ -35,6 +35,20 @@ def test_band_cuts_split_evenly():
     assert not np.isin(eta, cuts).any()
 
 
+
+def test_band_cuts_skip_tied_scores():
+    # discrete covariates give tied scores; a cut on a tied score would put those rows in one
+    # band or the other depending on the last bit of each engine's arithmetic
+    eta = np.repeat([0.0, 1.0, 2.0, 3.0], [10, 25, 5, 60])
+    cuts = band_cuts(eta, 4)
+    assert not np.isin(eta, cuts).any()
+    # quantile positions 25, 50, 75 fall on ties of 1, 3, 3: the gaps above 1, then below 3
+    # (nothing lies above 3), and the same gap again (an empty band rather than a cut on a score)
+    np.testing.assert_array_equal(cuts, [1.5, 2.5, 2.5])
+    # a band that cannot be separated: only the distinct gaps exist, and no cut sits on a score
+    cuts = band_cuts(np.repeat([0.0, 1.0], [50, 50]), 4)
+    assert not np.isin([0.0, 1.0], cuts).any()
+
 def test_smd_formula():
     x = np.array([[1.0], [2.0], [3.0], [2.0], [3.0], [4.0]])
     member = np.array([0, 0, 0, 1, 1, 1])
