@@ -3,6 +3,9 @@ PYTHON ?= python3
 VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
+# large buffers on transparent huge pages (glibc >= 2.35; ignored elsewhere): see stateworth/config.py
+GLIBC_TUNABLES ?= glibc.malloc.hugetlb=1
+export GLIBC_TUNABLES
 
 .PHONY: demo test bench proto lint clean venv
 

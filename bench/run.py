@@ -53,6 +53,8 @@ def _write(path: Path, doc) -> None:
 def run_one(size: str, solver: str, csr: str | None, timeout: float, devices: int | None = None) -> dict:
     cmd = [sys.executable, str(HERE / "solve_one.py"), "--size", size, "--solver", solver]
     env = dict(os.environ)
+    # every solver process (references included) gets huge pages for large buffers, as `make` sets
+    env.setdefault("GLIBC_TUNABLES", "glibc.malloc.hugetlb=1")
     if csr:
         cmd += ["--csr", csr]
     if devices:

@@ -11,11 +11,16 @@
    table needs the current counter;
 4. transpose to the grid order.
 
-Each contraction is one einsum over named dimensions (XLA emits a batched matrix product, no
-explicit transposes), each counter a gather along one axis, all inside one jitted function, so
-an apply costs about (grid size) x (sum of the sizes of the contracted axes), and memory is a
-few grid-sized arrays (times the status size where a frame holds status and status'). The
-transpose comes from :func:`jax.linear_transpose` (the gather becomes a scatter-add).
+A factor with a small axis (at most ``PAIR_LIMIT`` level pairs after the move rules) is applied
+pair by pair (:mod:`stateworth.rules.pairwise`): elementwise products of slices, which XLA
+compiles into one loop over the result; the status factor resolves the counters in the same
+loop (for a pair of statuses a counter's next level is a shift or a reset, not a gather). Larger
+axes are one einsum over named dimensions, and a counter that another table needs before the
+status step is a gather along its axis. An apply costs about (grid size) x (sum of the sizes of
+the contracted axes) and a few grid-sized arrays of memory. Tables are stored in the order their
+step reads them (``Plan.layouts``; ``with_tables`` takes the spec's order). The transpose runs
+the steps backwards: pairwise steps by their written-out transpose, the others by
+:func:`jax.linear_transpose` (the gather becomes a scatter-add).
 
 Shapes: ``mv`` takes ``(n,)`` or ``(n, k)`` and returns the same shape (k right-hand sides).
 """
@@ -31,12 +36,14 @@ import numpy as np
 import scipy.sparse as sp
 
 from stateworth.rules.factors import Factor
+from stateworth.rules import pairwise
 from stateworth.rules.grid import Grid
+from stateworth.rules.pairwise import PairStep, classify
 
 
 @dataclass(frozen=True)
 class Step:
-    kind: str  # "contract" | "counter" | "cycle" | "finish"
+    kind: str  # "contract" | "pairwise" | "counter" | "cycle" | "finish"
     key: str  # array name ("table.<axis>" or "index.<axis>")
     perm: tuple[int, ...]  # finish: transpose to the grid order
     shape_in: tuple[int, ...] = ()  # finish: frame shape before it
@@ -49,10 +56,26 @@ class Plan:
 
     grid_shape: tuple[int, ...]
     steps: tuple[Step, ...]
+    #: ``(key, perm)``: the operator stores table ``key`` as ``np.transpose(table, perm)`` (the
+    #: order its pairwise step reads); tables not listed are stored as given
+    layouts: tuple[tuple[str, tuple[int, ...]], ...] = ()
 
     @property
     def size(self) -> int:
         return int(np.prod(self.grid_shape, dtype=np.int64))
+
+    def stored(self, key: str, table):
+        """``table`` (a factor's table in its own order: given axes, then the next level) as
+        the operator stores it."""
+        perm = dict(self.layouts).get(key)
+        if perm is None or perm == tuple(range(len(perm))):
+            return table
+        return jnp.transpose(table, perm)
+
+    def stored_dims(self, key: str, dims: tuple) -> tuple:
+        """The names ``dims`` of a table's axes (its own order) in the stored order."""
+        perm = dict(self.layouts).get(key)
+        return dims if perm is None else tuple(dims[p] for p in perm)
 
 
 def counter_flags(spec, axis: str) -> tuple[np.ndarray, np.ndarray]:
@@ -139,9 +162,20 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
 
     for f in reversed(factors):
         tdims = [g[5:] + "'" if g.startswith("next.") else g for g in f.given] + [f.axis + "'"]
-        for d in list(pending):
-            if d in tdims or (f.axis == status and kinds[d] == "counter"):
+        here = [d for d in pending if d in tdims or (f.axis == status and kinds[d] == "counter")]
+        for d in here:
+            # a cycle is a roll; a counter needed by a table of another axis is a gather
+            if kinds[d] == "cycle" or f.axis != status:
                 resolve(d)
+        step = _pair_step(spec, f, tdims, dims, [d for d in here if d in pending], status, list(grid.names))
+        if step is not None:
+            steps.append(Step("pairwise", f"table.{f.axis}", (), (), (step,)))
+            for c, _ in step.counters:
+                pending.remove(c)
+            dims = list(step.dims_out)
+            continue
+        for d in [d for d in here if d in pending]:
+            resolve(d)
         nxt = f.axis + "'"
         out = [x for x in dims if x != nxt] + [x for x in tdims[:-1] if x not in dims]
         expr = "".join(letter(x) for x in dims) + "," + "".join(letter(x) for x in tdims) + "->" + \
@@ -156,37 +190,100 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
     dims_full = dims + missing
     perm = tuple(dims_full.index(x) for x in target)
     steps.append(Step("finish", "", perm, tuple(size_of(x) for x in dims), (len(missing),)))
-    return Plan(grid.shape, tuple(steps))
+    layouts = tuple((st.key, st.extra[0].perm) for st in steps if st.kind == "pairwise")
+    return Plan(grid.shape, tuple(steps), layouts)
+
+
+#: the most level pairs a factor is unrolled into (:mod:`stateworth.rules.pairwise`); a larger
+#: axis is contracted by one einsum (compile time grows with the pairs, and the einsum's matrix
+#: blocks are no longer tiny)
+PAIR_LIMIT = 64
+
+
+def _pair_step(spec, f: Factor, tdims: list[str], dims: list[str], counters: list[str],
+               status: str, grid_names: list[str]) -> PairStep | None:
+    """The factor of ``f.axis`` as a :class:`~stateworth.rules.pairwise.PairStep` resolving
+    ``counters`` (only for the status factor), or None when it has too many level pairs."""
+    a, an = f.axis, f.axis + "'"
+    K = len(spec.axis_levels(a))
+    res = [x[:-1] if x.endswith("'") and x[:-1] in counters else x for x in dims]
+    if counters and status not in res:
+        res.insert(res.index(status + "'"), status)
+    out = [x for x in res if x != an] + [x for x in tdims[:-1] if x not in res]
+    # the result in grid order (a next level just after its current one): the last step then
+    # needs no transpose to the grid order, which costs as much as a step when the flat
+    # result is a reshape of it
+    out.sort(key=lambda x: (grid_names.index(x.rstrip("'")), x.endswith("'")))
+    has_i = a in out
+    moves = spec.axes[a].moves or {}
+    levels = spec.axis_levels(a)
+    allowed = np.ones((K, K), dtype=bool)
+    if has_i and moves and a in tdims:
+        # the table is zero off the allowed moves (checked at compile), so those terms vanish
+        for frm, tos in moves.items():
+            allowed[levels.index(frm)] = np.isin(levels, tos)
+    pairs = [(i, j) for i in (range(K) if has_i else [-1]) for j in range(K) if i < 0 or allowed[i, j]]
+    if len(pairs) > PAIR_LIMIT:
+        return None
+    maps = tuple((c, tuple(classify(counter_index(spec, c)[:, i, j]) for i, j in pairs)) for c in counters)
+    # the table is stored with the pair's levels first and the rest in the result's order, so
+    # that every term reads a contiguous block in the order it writes
+    stored = ([a] if a in tdims else []) + [an] + [d for d in out if d in tdims and d != a]
+    perm = tuple(tdims.index(d) for d in stored)
+    return PairStep(a, K, tuple(dims), tuple(out), tuple(stored), tuple(pairs), maps, f"table.{a}", perm)
+
+
+def _step(plan: Plan, arrays: dict, st: Step, frame: jax.Array) -> jax.Array:
+    """One step of the plan on the frame."""
+    if st.kind == "contract":
+        return jnp.einsum(st.extra[0], frame, arrays[st.key])
+    if st.kind == "pairwise":
+        return pairwise.apply(st.extra[0], arrays[st.key], frame)
+    if st.kind == "cycle":
+        (pos,) = st.extra
+        return jnp.roll(frame, -1, axis=pos)
+    if st.kind == "counter":
+        pos, (ps, psp), has_cur, insert_at = st.extra
+        if not has_cur:
+            frame = jnp.expand_dims(frame, insert_at)
+        idx = arrays[st.key]  # (C, S, S'): next level from (level, status, next status)
+        shape = [1] * frame.ndim
+        shape[pos], shape[ps], shape[psp] = idx.shape
+        order = np.argsort([pos, ps, psp])
+        idx = jnp.transpose(idx, tuple(order)).reshape(shape)
+        # a gather along one axis (used where a table other than the status one needs the
+        # current counter; next to the status factor, :mod:`pairwise` resolves counters)
+        return jnp.take_along_axis(frame, idx, axis=pos, mode="clip")
+    (n_missing,) = st.extra  # finish
+    if n_missing:
+        frame = frame.reshape(frame.shape + (1,) * n_missing)
+    frame = jnp.transpose(frame, st.perm)
+    return jnp.broadcast_to(frame, plan.grid_shape)
 
 
 def _apply_single(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
     """``x`` is ``(n,)``: one apply of P."""
     frame = x.reshape(plan.grid_shape)
     for st in plan.steps:
-        if st.kind == "contract":
-            frame = jnp.einsum(st.extra[0], frame, arrays[st.key])
-        elif st.kind == "cycle":
-            (pos,) = st.extra
-            frame = jnp.roll(frame, -1, axis=pos)
-        elif st.kind == "counter":
-            pos, (ps, psp), has_cur, insert_at = st.extra
-            if not has_cur:
-                frame = jnp.expand_dims(frame, insert_at)
-            idx = arrays[st.key]  # (C, S, S'): next level from (level, status, next status)
-            shape = [1] * frame.ndim
-            shape[pos], shape[ps], shape[psp] = idx.shape
-            order = np.argsort([pos, ps, psp])
-            idx = jnp.transpose(idx, tuple(order)).reshape(shape)
-            # a gather along one axis; its transpose (for P^T) is a scatter-add, measured as fast
-            # as the forward apply (a select on shifted views was as fast forward, 8x slower back)
-            frame = jnp.take_along_axis(frame, idx, axis=pos, mode="clip")
-        elif st.kind == "finish":
-            (n_missing,) = st.extra
-            if n_missing:
-                frame = frame.reshape(frame.shape + (1,) * n_missing)
-            frame = jnp.transpose(frame, st.perm)
-            frame = jnp.broadcast_to(frame, plan.grid_shape)
+        frame = _step(plan, arrays, st, frame)
     return frame.reshape(-1)
+
+
+def _apply_transpose_single(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
+    """``y`` is ``(n,)``: one apply of P^T, the steps transposed in reverse order (pairwise
+    steps by their written-out transpose, the others by ``jax.linear_transpose``)."""
+    shapes = []
+    frame = jax.ShapeDtypeStruct(plan.grid_shape, y.dtype)
+    for st in plan.steps:
+        shapes.append(frame)
+        frame = jax.eval_shape(partial(_step, plan, arrays, st), frame)
+    cot = y.reshape(plan.grid_shape)
+    for st, shape in zip(reversed(plan.steps), reversed(shapes)):
+        if st.kind == "pairwise":
+            cot = pairwise.apply_transpose(st.extra[0], arrays[st.key], cot, shape.shape)
+        else:
+            cot = jax.linear_transpose(partial(_step, plan, arrays, st), shape)(cot)[0]
+    return cot.reshape(-1)
 
 
 def _columns(f, x: jax.Array) -> jax.Array:
@@ -202,9 +299,7 @@ def _apply(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
 
 
 def _apply_transpose(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
-    n = plan.size
-    tr = jax.linear_transpose(partial(_apply_single, plan, arrays), jax.ShapeDtypeStruct((n,), y.dtype))
-    return _columns(lambda v: tr(v)[0], y)
+    return _columns(partial(_apply_transpose_single, plan, arrays), y)
 
 
 @jax.tree_util.register_pytree_node_class
@@ -239,7 +334,7 @@ class GridOperator:
         """The same structure with other factor tables (a changed or drawn model)."""
         arrays = dict(self.arrays)
         for k, v in tables.items():
-            arrays[f"table.{k}"] = jnp.asarray(v, dtype=jnp.float64)
+            arrays[f"table.{k}"] = self.plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64))
         return GridOperator(self.plan, arrays, self.transposed)
 
     def tree_flatten(self):
@@ -254,7 +349,7 @@ class GridOperator:
 
 def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray]) -> GridOperator:
     plan = build_plan(spec, grid, factors)
-    arrays = {f"table.{k}": jnp.asarray(v, dtype=jnp.float64) for k, v in tables.items()}
+    arrays = {f"table.{k}": plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64)) for k, v in tables.items()}
     for a in grid.axes:
         if a.kind == "counter":
             arrays[f"index.{a.name}"] = jnp.asarray(counter_index(spec, a.name))

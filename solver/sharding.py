@@ -117,7 +117,8 @@ def put_operator(plan: ShardPlan, op):
     from stateworth.rules.operator import GridOperator
 
     arrays = {}
-    given = {f"table.{f.axis}": f.given for f in plan.model.factors}
+    given = {f"table.{f.axis}": op.plan.stored_dims(f"table.{f.axis}", tuple(f.given) + (f"next.{f.axis}",))
+             for f in plan.model.factors}
     for k, v in op.arrays.items():
         g = given.get(k, ())
         if plan.axis in g:

@@ -39,11 +39,11 @@ PRECISIONS = ("auto", "float64", "float32")
 
 def memory_needed(n: int, k: int, method: str, restart: int = 40) -> int:
     """Bytes a solve plans to hold beyond the model: the Krylov basis (restart + 1 vectors per
-    column in flight, and restart preconditioned vectors for flexible GMRES), work vectors, and
-    for ``dense`` the n x n matrix twice."""
+    column in flight, and restart preconditioned vectors for flexible GMRES, float32 when the
+    preconditioner is), work vectors, and for ``dense`` the n x n matrix twice."""
     if method == "dense":
         return 8 * (2 * n * n + 6 * n * k)
-    return 8 * n * ((2 * restart + 8) + 6 * k)
+    return 8 * n * ((2 * restart + 8) + 6 * k)  # Z counted as float64: the float64 preconditioner's case
 
 
 def _resolve_inputs(model, rewards, beta):
@@ -169,7 +169,8 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
                              field="preconditioner")
         from stateworth.rules.compiled import CompiledModel
         if preconditioner != "none" and isinstance(model, CompiledModel):
-            pc = two_level(model, beta, transpose=transpose)
+            pc = two_level(model, beta, transpose=transpose,
+                           dtype=jnp.float64 if preconditioner_precision == "float64" else jnp.float32)
             if shard is not None:
                 pc = sharding.put_preconditioner(shard, pc)
             notes.append(f"two-level preconditioner: coarse blocks {pc.inv.shape[0]} x {pc.coarse.block}"
@@ -215,7 +216,8 @@ def _gmres_jit(A, r, x0, beta, tol, restart, max_iter, pc, A32=None):
     if pc is None:
         return gmres(matvec, r, x0, tol=tol, restart=restart, max_iter=max_iter)
     return gmres(matvec, r, x0, tol=tol, restart=restart, max_iter=max_iter,
-                 precond=low_precision(pc, A, A32, beta), precond_cost=pc.cost, flexible=A32 is not None)
+                 precond=low_precision(pc, A, A32, beta), precond_cost=pc.cost, flexible=A32 is not None,
+                 z_dtype=jnp.float32 if A32 is not None else jnp.float64)
 
 
 @partial(jax.jit, static_argnames=("tol", "max_iter", "stochastic", "beta"))

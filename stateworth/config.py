@@ -2,9 +2,17 @@
 
 * float64 everywhere. Value functions of chains with beta close to 1 lose digits quickly in
   float32 (the condition number of I - beta P is about 1 / (1 - beta), 126 for 10 % a year
-  monthly), so every array in stateworth is float64.
+  monthly), so values, residuals and the Krylov basis are float64; only the preconditioner
+  (an approximate inverse by design) runs in float32 (`solver/preconditioner.py`).
 * ``STATEWORTH_MEMORY_LIMIT_GB`` caps the memory a compile or solve may plan to use; grids whose
   estimate exceeds it are refused before anything is allocated. Default 12 GB.
+* Huge pages for large buffers (Linux, glibc 2.35 or later): XLA allocates a solve's Krylov basis
+  afresh on every call, and first touching that memory in 4 KiB pages was a quarter of a solve
+  at 3.6 x 10^5 states (0.09 s of page faults for 230 MB). The glibc tunable
+  ``glibc.malloc.hugetlb=1`` makes malloc ask for transparent huge pages on large blocks. glibc
+  reads it at process start, so it is an environment variable, not a setting here: ``make``
+  exports ``GLIBC_TUNABLES=glibc.malloc.hugetlb=1`` for tests, demo and benchmarks; set it the
+  same way for ``stateworth`` commands that solve large grids. Results do not depend on it.
 """
 
 from __future__ import annotations
@@ -26,3 +34,4 @@ def memory_limit_bytes() -> int:
     except ValueError:
         gb = DEFAULT_MEMORY_LIMIT_GB
     return int(gb * 1024**3)
+

@@ -108,7 +108,7 @@ def point_preconditioner(model, transpose: bool = False):
     sampling noise, so the point model's coarse inverse still captures its slow modes."""
     if model.grid.size <= DENSE_MAX:
         return None
-    return two_level(model, model.beta, transpose=transpose)
+    return two_level(model, model.beta, transpose=transpose, dtype=jnp.float32)
 
 
 def _batch_size(n: int, k: int, restart: int, D: int) -> int:
@@ -137,7 +137,7 @@ def _gmres_draws(op, pc, stacked, rhs, x0, beta, *, tol, restart, max_iter, batc
             # the solver's float32 preconditioner under flexible GMRES, as in a single solve
             return gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter,
                          precond=low_precision(pc, A, A.astype(jnp.float32), beta), precond_cost=pc.cost,
-                         flexible=True)
+                         flexible=True, z_dtype=jnp.float32)
         x, it, ap, res, st = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter)
         return x, it, ap, res, st
 
