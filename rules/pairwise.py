@@ -118,20 +118,15 @@ def _map_transpose(w: jnp.ndarray, p: int, how) -> jnp.ndarray:
     return jnp.moveaxis(z, 0, p)
 
 
-def _term_dims(st: PairStep) -> tuple[list[str], list[str], list[str]]:
-    """Names of (frame slice after counters, table slice, result slice) of one pair."""
-    a, an = st.axis, st.axis + "'"
-    renamed = {c + "'": c for c, _ in st.counters}
-    f = [renamed.get(d, d) for d in st.dims_in if d not in (a, an)]
-    t = [d for d in st.tdims if d not in (a, an)]
-    o = [d for d in st.dims_out if d != a]
-    return f, t, o
+def _result_dims(st: PairStep) -> list[str]:
+    """Names of one pair's term: the result's dimensions without the current ``axis``."""
+    return [d for d in st.dims_out if d != st.axis]
 
 
 def apply(st: PairStep, table: jnp.ndarray, frame: jnp.ndarray) -> jnp.ndarray:
     """The forward step: ``frame`` (dims ``dims_in``) -> result (dims ``dims_out``)."""
     a, an = st.axis, st.axis + "'"
-    fdims, tdims_ij, odims = _term_dims(st)
+    odims = _result_dims(st)
     has_i = a in st.dims_out
     acc: dict[int, jnp.ndarray] = {}
     for k, (i, j) in enumerate(st.pairs):
@@ -165,7 +160,7 @@ def apply_transpose(st: PairStep, table: jnp.ndarray, out: jnp.ndarray, in_shape
     """The transposed step: a cotangent of the result (dims ``dims_out``) -> one of the frame
     (dims ``dims_in``, shape ``in_shape``)."""
     a, an = st.axis, st.axis + "'"
-    fdims, _, odims = _term_dims(st)
+    odims = _result_dims(st)
     counters = dict(st.counters)
     # the frame slice's own dims (before renaming counters), and with the counters at their current names
     raw = [d for d in st.dims_in if d not in (a, an)]

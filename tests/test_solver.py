@@ -125,12 +125,14 @@ def test_preconditioner_coarse_operator_is_galerkin(models):
             np.testing.assert_allclose(got, ref, atol=1e-12)
 
 
-def test_preconditioned_gmres_needs_fewer_applies(example_model):
+def test_preconditioned_gmres_needs_fewer_iterations(example_model):
+    # iterations, not applies: the smoother spends applies to save iterations, whose basis
+    # orthogonalisation is the dearer part on large grids (solver/preconditioner.py)
     m = example_model
     plain = solve(m, "revenue", method="gmres", tol=1e-10, preconditioner="none")
     pre = solve(m, "revenue", method="gmres", tol=1e-10)
     np.testing.assert_allclose(pre.values, plain.values, rtol=1e-8)
-    assert pre.operator_applies < plain.operator_applies
+    assert 2 * pre.iterations < plain.iterations
     assert any("two-level" in note for note in pre.notes)
 
 
