@@ -22,6 +22,7 @@ from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
 
 from stateworth.errors import StateworthError
+from stateworth.server import logs
 from stateworth.server.interceptors import CallInterceptor
 from stateworth.server.metrics import Metrics, serve_metrics
 from stateworth.server.service import AdminServicer, Limits, ValuationServicer
@@ -183,6 +184,7 @@ class Server:
         self.pool.shutdown()
         if self._httpd is not None:
             self._httpd.shutdown()
+        logs.flush()  # the access lines of the last calls come before "stopped"
         log.info("stopped", extra={"fields": {"event": "stopped"}})
 
     def wait(self) -> None:

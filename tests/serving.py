@@ -143,6 +143,19 @@ class ServerProcess:
                     raise TimeoutError(f"no '{event}' from the server:\n" + "".join(self.lines))
                 self._cv.wait(min(left, 0.5))
 
+    def wait_until(self, ready, timeout: float = 10.0) -> list[dict]:
+        """The events once ``ready(events)`` holds (access lines are written by the server's log
+        writer up to --log-flush-ms after their call); TimeoutError with the log if never."""
+        end = time.monotonic() + timeout
+        with self._cv:
+            while not ready(list(self.events)):
+                left = end - time.monotonic()
+                if left <= 0:
+                    raise TimeoutError("the server's log never showed what the test waits for:\n"
+                                       + "".join(self.lines[-40:]))
+                self._cv.wait(min(left, 0.1))
+            return list(self.events)
+
     @property
     def target(self) -> str:
         return f"127.0.0.1:{self.port}"

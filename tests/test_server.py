@@ -302,6 +302,9 @@ def test_logs_are_json_and_never_carry_request_contents(served, client):
         client.value(MODEL, dict(STATE, market=marker))
     client.value(MODEL, STATE)
     srv = served["server"]
+    srv.wait_until(lambda evs: any(e.get("event") == "rpc" and e.get("code") == "INVALID_ARGUMENT" for e in evs)
+                   and any(e.get("event") == "rpc" and e.get("method", "").endswith("/GetValue")
+                           and e.get("code") == "OK" for e in evs))
     rpc = [e for e in list(srv.events) if e.get("event") == "rpc"]
     assert rpc and all({"method", "code", "ms", "ts"} <= set(e) for e in rpc)
     assert any(e["code"] == "INVALID_ARGUMENT" and e.get("field") == "market" for e in rpc)

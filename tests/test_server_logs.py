@@ -89,3 +89,62 @@ def test_without_setup_lines_go_through_logging(monkeypatch):
     finally:
         root.handlers[:], root.level, root.propagate = saved
     assert seen == [{"event": "rpc", "code": "NOT_FOUND"}]
+
+
+@pytest.fixture
+def queued(monkeypatch):
+    """``setup`` with a queue flushed every 30 ms; writer stopped and loggers restored after."""
+    root = logging.getLogger("stateworth")
+    saved = (root.handlers[:], root.level, root.propagate, logs._HANDLER)
+    buf = io.StringIO()
+    monkeypatch.setattr("sys.stderr", buf)
+    logs.setup("info", flush_seconds=0.03)
+    yield buf
+    logs._stop_writer()
+    root.handlers[:], root.level, root.propagate = saved[:3]
+    logs._HANDLER = saved[3]
+
+
+def test_queued_lines_keep_their_order_and_the_time_of_their_call(queued):
+    import time
+
+    log = logging.getLogger("stateworth.server.access")
+    t0 = time.time()
+    for k in range(50):
+        logs.info_line(log, "rpc", {"event": "rpc", "k": k})
+    end = time.monotonic() + 5
+    while queued.getvalue().count("\n") < 50 and time.monotonic() < end:
+        time.sleep(0.01)  # the writer thread, not this call, writes them
+    docs = _docs(queued)
+    assert [d["k"] for d in docs] == list(range(50))
+    # ts is the time of the call (formatted later by the writer), within a second of t0
+    assert all(abs(time.mktime(time.strptime(d["ts"][:19], "%Y-%m-%dT%H:%M:%S")) - time.mktime(time.gmtime(t0))) <= 1
+               for d in docs)
+    assert all(d == {"ts": d["ts"], "level": "info", "logger": "stateworth.server.access", "msg": "rpc",
+                     "event": "rpc", "k": d["k"]} for d in docs)
+
+
+def test_flush_writes_the_queue_at_once_and_the_fields_are_copied(queued):
+    log = logging.getLogger("stateworth.server.access")
+    fields = {"event": "rpc", "code": "OK"}
+    logs.info_line(log, "rpc", fields)
+    fields["code"] = "changed after the call"
+    logs.flush()
+    assert [d["code"] for d in _docs(queued)] == ["OK"]
+    logs.flush()  # nothing queued: writes nothing more
+    assert queued.getvalue().count("\n") == 1
+
+
+def test_a_full_queue_is_written_by_the_caller(queued, monkeypatch):
+    monkeypatch.setattr(logs, "_QUEUE_LIMIT", 5)
+    logs._STOP.set()  # the writer thread stops: only the callers write now
+    logs._WRITER.join(5)
+    log = logging.getLogger("stateworth.server.access")
+    for k in range(5):
+        logs.info_line(log, "rpc", {"k": k})
+    assert [d["k"] for d in _docs(queued)] == list(range(5))
+
+
+def test_negative_flush_interval_is_refused():
+    with pytest.raises(ValueError, match="flush_seconds"):
+        logs.setup("info", flush_seconds=-1)

@@ -40,8 +40,11 @@ def test_round_robin_over_replicas_and_a_rolling_reload(replicas):
     with cl.Client([p.target for p in procs], timeout=20) as both:
         before = [_calls(p) for p in procs]
         assert {both.value(MODEL, STATE).version for _ in range(40)} == {v1}
-        import time
-        time.sleep(0.2)  # access lines are written after the response
+        for p, b in zip(procs, before):  # access lines come from each server's log writer
+            try:
+                p.wait_until(lambda evs, p=p, b=b: _calls(p) > b, timeout=5)
+            except TimeoutError:
+                pass  # the assertion below says which replica was never reached
         after = [_calls(p) for p in procs]
         assert all(a > b for a, b in zip(after, before)), "round-robin reached only one replica"
         v2 = write_artifact(d, "tiny", seed=5)

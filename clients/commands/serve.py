@@ -43,6 +43,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--metrics-host", default="127.0.0.1", help="address of the metrics endpoint (default loopback)")
     p.add_argument("--no-reflection", action="store_true", help="do not serve gRPC server reflection")
     p.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"])
+    p.add_argument("--log-flush-ms", type=float, default=50.0,
+                   help="write queued access lines every this many ms (default 50; 0: as each call ends)")
     p.add_argument("--no-access-log", action="store_true",
                    help="no log line per call (metrics still count every call)")
 
@@ -58,7 +60,9 @@ def run(args: argparse.Namespace) -> int:
             raise QueryError(f"--{opt.replace('_', '-')} must be at least 1 (got {getattr(args, opt)})", field=opt)
     if args.max_message_mb <= 0:
         raise QueryError("--max-message-mb must be positive", field="max_message_mb")
-    setup(args.log_level)
+    if args.log_flush_ms < 0:
+        raise QueryError(f"--log-flush-ms must be 0 or more (got {args.log_flush_ms})", field="log_flush_ms")
+    setup(args.log_level, flush_seconds=args.log_flush_ms / 1000)
     if args.no_access_log:
         import logging
         logging.getLogger("stateworth.server.access").setLevel(logging.WARNING)
