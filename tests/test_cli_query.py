@@ -175,3 +175,10 @@ def test_readout_difference_of_arms(mini, capsys):
     assert main(["readout", str(control), str(treatment)]) == 0
     out = capsys.readouterr().out
     assert "treatment - control" in out and "long-run member share" in out
+
+
+@pytest.mark.parametrize("opt, value", [("--log-flush-ms", "-5"), ("--threads", "0")])
+def test_serve_refuses_bad_options_before_listening(tmp_path, capsys, opt, value):
+    rc = main(["serve", str(tmp_path), "--port", "0", opt, value])
+    err = capsys.readouterr().err
+    assert rc == 1 and opt in err and "Traceback" not in err
