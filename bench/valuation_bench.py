@@ -38,6 +38,9 @@ from models import build  # noqa: E402
 from stateworth.solver import solve  # noqa: E402
 from stateworth.valuation import TransitionChange, Valuer  # noqa: E402
 
+#: the tolerance Valuer.build solves draws to (its draw_tol default); separate solves use it too
+DRAW_TOL = 1e-8
+
 
 def dirichlet_draws(tables: dict, D: int, conc: float, seed: int) -> dict:
     """D draws per table, each row ~ Dirichlet(conc * row) on its positive entries (a stand-in
@@ -150,7 +153,7 @@ def main() -> None:
         t0 = time.perf_counter()
         md = model.with_tables({k: draws[k][d] for k in draws})
         t1 = time.perf_counter()
-        s_d = solve(md, "revenue")
+        s_d = solve(md, "revenue", tol=DRAW_TOL)  # the tolerance the batched draws are solved to
         t_sep.append(time.perf_counter() - t0)
         t_sep_solve.append(time.perf_counter() - t1)
         sep_it.append(s_d.iterations)
@@ -162,7 +165,7 @@ def main() -> None:
     print(f"separate: {per:.2f} s each (solve alone {per_solve:.2f} s, {sep_it} it)", flush=True)
     save()
     dm = model.__class__(**{**model.__dict__, "draws": draws})
-    t_db, vd = timed(lambda: Valuer.build(dm, streams=["revenue"], chunk=a.batch))
+    t_db, vd = timed(lambda: Valuer.build(dm, streams=["revenue"], chunk=a.batch, draw_tol=DRAW_TOL))
     res["batched"] = {"build_seconds_including_point_solve_and_compile": t_db, "draws_seconds": vd.draw_stats["seconds"],
                       "stats": vd.draw_stats}
     c0 = {"market": "m00", "tenure": "0", "status": "prospect", "engagement": "e0", "band": grid.axis("band").levels[-1]}

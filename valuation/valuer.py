@@ -15,6 +15,7 @@ percentile intervals over the draws, the contrast taken within each draw.
 from __future__ import annotations
 
 import dataclasses
+import threading
 import time
 from typing import Any, Callable, Mapping, Sequence
 
@@ -69,6 +70,9 @@ class Valuer:
         self._horizons: dict[int, np.ndarray] = {}
         self._horizon_draws: dict[int, np.ndarray] = {}
         self._stationary: dict[Any, np.ndarray] = {}
+        # (stream, block) -> reward parts on the block's states (see draws.py); blocks are few
+        # (one per selection of fixed levels), and slicing the full grid's parts is ~5-10 ms
+        self._parts: dict[tuple, Any] = {}
 
     @classmethod
     def build(cls, model, *, tol: float = 1e-10, draws: bool = True,
@@ -470,8 +474,22 @@ class Valuer:
         model, spec = self.model, self.model.spec
         tables = {**model.tables, change.axis: new}
         # only the fixed cells the change is conditioned on can move (P is block-diagonal there)
+        # the changed model's version is a hash of every table (~10 ms for the 14 MB status table
+        # at 3.6e5 states); hashlib lets go of the interpreter lock, so it runs beside the solve
+        version_box: list[str] = []
+        hasher = threading.Thread(target=lambda: version_box.append(content_hash(spec, tables)[:12]),
+                                  name="stateworth-change-hash", daemon=True)
+        hasher.start()
         block = touched(model, change.axis, change.when)
-        parts = slice_parts(reward_parts(model, stream), block.states)
+        key = (stream, tuple((a, tuple(lv.tolist())) for a, lv in sorted(block.levels.items())))
+        parts = self._parts.get(key)
+        if parts is None:
+            full = self._parts.get((stream, None))
+            if full is None:
+                full = self._parts[(stream, None)] = reward_parts(model, stream)
+            parts = full if block.full else slice_parts(full, block.states)
+            if len(self._parts) < 64:
+                self._parts[key] = parts
         sub = restrict(model, block, tables, {})
         r_sub = np.asarray(rewards_on(sub.operator, [parts]))
         sub = dataclasses.replace(sub, rewards={stream: r_sub[:, 0]})
@@ -508,7 +526,8 @@ class Valuer:
                 wlo, whi = percentile_interval(dd @ w, level)
                 interval = (float(wlo), float(whi))
             stats["draws"] = {**dstats, "seconds": time.perf_counter() - t1}
-        changed_version = content_hash(spec, tables)[:12]
+        hasher.join()
+        changed_version = version_box[0] if version_box else content_hash(spec, tables)[:12]
         return ChangeResult(delta=delta, weighted=weighted, unit=self.unit(stream), version=self.version,
                             changed_version=changed_version, stream=stream, interval=interval, level=level,
                             state_interval=state_iv, change=describe_change(self.model, change), stats=stats)
