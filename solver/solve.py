@@ -169,7 +169,7 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
                              field="preconditioner")
         from stateworth.rules.compiled import CompiledModel
         if preconditioner != "none" and isinstance(model, CompiledModel):
-            pc = two_level(model, beta, transpose=transpose, frozen=True,
+            pc = two_level(model, beta, transpose=transpose, frozen=shard is None,  # see sharding.py
                            dtype=jnp.float64 if preconditioner_precision == "float64" else jnp.float32)
             if shard is not None:
                 pc = sharding.put_preconditioner(shard, pc)
