@@ -1,7 +1,9 @@
 """Building and running the server: ports, TLS, limits, health, reflection, SIGTERM drain.
 
 Start-up order: listen (health NOT_SERVING), load and solve every artifact of the model
-directory, then SERVING. Health stays NOT_SERVING while no model is loaded (an empty model
+directory, then SERVING. A worker of ``stateworth serve --workers N`` (``worker_index`` set,
+see :mod:`.supervisor`) loads first and listens after, on a port it shares with the other
+workers, and relays admin loads through its supervisor (:mod:`.peers`). Health stays NOT_SERVING while no model is loaded (an empty model
 directory is allowed: load one later with the admin LoadModel call). SIGTERM or SIGINT: health
 turns NOT_SERVING, new calls are refused, calls in flight get ``drain_seconds`` to finish, then
 the process exits with status 0.
@@ -10,6 +12,7 @@ the process exits with status 0.
 from __future__ import annotations
 
 import logging
+import os
 import signal
 import threading
 from concurrent import futures
@@ -68,6 +71,10 @@ class ServerConfig:
     metrics_port: int | None = None
     reflection: bool = True
     build: Callable[[Any], Any] | None = field(default=None, repr=False)
+    #: set in the worker processes of ``stateworth serve --workers N`` (see :mod:`.supervisor`)
+    worker_index: int | None = None
+    #: a worker's own port (0: a free one), listened on besides the shared ``port``
+    worker_port: int | None = None
 
 
 def read_secret(path: str | None, what: str) -> str | None:
@@ -96,16 +103,23 @@ class Server:
         self.port: int | None = None
         self.metrics_port: int | None = None
         self._httpd = None
+        self.peers = None
+        if config.worker_index is not None:
+            import sys
+
+            from stateworth.server.peers import PeerLink
+            self.peers = PeerLink(config.worker_index, sys.stdin, sys.stdout)
         opts = [("grpc.max_receive_message_length", config.max_message_bytes),
                 ("grpc.max_send_message_length", config.max_message_bytes),
-                ("grpc.so_reuseport", 0)]
+                # workers share their port (the kernel spreads connections); one process does not
+                ("grpc.so_reuseport", 1 if self.peers is not None else 0)]
         self.grpc = grpc.server(futures.ThreadPoolExecutor(max_workers=config.threads, thread_name_prefix="stateworth-rpc"),
                                 interceptors=[CallInterceptor(self.metrics, config.token, config.admin_token)],
                                 options=opts, maximum_concurrent_rpcs=config.max_concurrent)
         valuation_service_pb2_grpc.add_ValuationServiceServicer_to_server(
             ValuationServicer(self.store, self.pool, Limits(max_batch=config.max_batch)), self.grpc)
-        admin_service_pb2_grpc.add_ModelAdminServiceServicer_to_server(AdminServicer(self.store, self.metrics),
-                                                                       self.grpc)
+        self.admin = AdminServicer(self.store, self.metrics, self.peers, config.work_seconds)
+        admin_service_pb2_grpc.add_ModelAdminServiceServicer_to_server(self.admin, self.grpc)
         health_pb2_grpc.add_HealthServicer_to_server(self.health, self.grpc)
         if config.reflection:
             reflection.enable_server_reflection(SERVICE_NAMES + (health.SERVICE_NAME, reflection.SERVICE_NAME),
@@ -126,9 +140,10 @@ class Server:
         if not self._stopped.is_set():
             self._set_health(not snap.empty)
 
-    def _bind(self) -> int:
+    def _bind(self, port: int | None = None) -> int:
         c = self.config
-        address = f"[{c.host}]:{c.port}" if ":" in c.host else f"{c.host}:{c.port}"
+        port = c.port if port is None else port
+        address = f"[{c.host}]:{port}" if ":" in c.host else f"{c.host}:{port}"
         if bool(c.tls_cert) != bool(c.tls_key):
             raise ConfigError("TLS needs both --tls-cert and --tls-key", where="--tls-cert/--tls-key")
         if c.tls_cert:
@@ -136,18 +151,20 @@ class Server:
                 key, cert = Path(c.tls_key).read_bytes(), Path(c.tls_cert).read_bytes()
             except OSError as e:
                 raise ConfigError(f"cannot read the TLS file ({e.strerror})", where=e.filename) from None
-            port = self.grpc.add_secure_port(address, grpc.ssl_server_credentials([(key, cert)]))
+            bound = self.grpc.add_secure_port(address, grpc.ssl_server_credentials([(key, cert)]))
         else:
-            if c.host not in LOOPBACK:
+            if c.host not in LOOPBACK and port == c.port:
                 log.warning("listening beyond loopback without TLS", extra={"fields": {
                     "event": "insecure_listen", "host": c.host}})
-            port = self.grpc.add_insecure_port(address)
-        if not port:
+            bound = self.grpc.add_insecure_port(address)
+        if not bound:
             raise ConfigError(f"cannot listen on {address} (in use, or not an address of this machine)",
                               where="--host/--port")
-        return port
+        return bound
 
     def start(self, load: bool = True) -> "Server":
+        if self.peers is not None:
+            return self._start_worker()
         self.port = self._bind()
         self.grpc.start()
         if self.config.metrics_port is not None:
@@ -170,6 +187,25 @@ class Server:
                 raise
         log.info("serving", extra={"fields": {"event": "serving", "port": self.port,
                                               "versions": [f"{s.name}@{s.version}" for s in self.store.snapshot.all()]}})
+        return self
+
+    def _start_worker(self) -> "Server":
+        """Load, then listen on the shared port, then tell the supervisor (worker mode)."""
+        self.store.reload_all()
+        self.port = self._bind()
+        # the worker's own port besides the shared one: for clients that balance over workers
+        # themselves (one gRPC channel sends every call down one connection, to one worker)
+        self.worker_port = self._bind(self.config.worker_port or 0)
+        self.grpc.start()
+        if self.config.metrics_port is not None:
+            self._httpd = serve_metrics(self.metrics, "127.0.0.1", 0)
+            self.metrics_port = self._httpd.server_port
+        self.peers.run_op = self.admin.run_local
+        self.peers.start()
+        log.info("worker serving", extra={"fields": {
+            "event": "worker_ready", "port": self.port, "worker_port": self.worker_port, "pid": os.getpid(),
+            "versions": [f"{s.name}@{s.version}" for s in self.store.snapshot.all()]}})
+        self.peers.ready(self.port, self.worker_port, self.metrics_port)
         return self
 
     def stop(self, grace: float | None = None) -> None:
@@ -200,6 +236,8 @@ def run(config: ServerConfig) -> int:
         stop.set()
 
     prev = {s: signal.signal(s, on_signal) for s in (signal.SIGTERM, signal.SIGINT)}
+    if server.peers is not None:  # a worker whose supervisor is gone stops too
+        server.peers.on_close = stop.set
     try:
         server.start()
         while not stop.wait(0.5):

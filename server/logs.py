@@ -38,6 +38,8 @@ _QUEUE_LIMIT = 10_000
 _PENDING: collections.deque | None = None
 _WRITER: threading.Thread | None = None
 _STOP = threading.Event()
+# fields every line carries (a worker process of ``stateworth serve --workers N`` adds its index)
+_STATIC: dict[str, Any] = {}
 
 
 def _ts(created: float) -> str:
@@ -47,6 +49,8 @@ def _ts(created: float) -> str:
 
 def _line(created: float, level: str, logger: str, msg: str, fields: Mapping[str, Any] | None) -> str:
     doc = {"ts": _ts(created), "level": level, "logger": logger, "msg": msg}
+    if _STATIC:
+        doc.update(_STATIC)
     if fields:
         doc.update(fields)
     return json.dumps(doc, default=str, separators=(",", ":"))
@@ -60,15 +64,18 @@ class JsonFormatter(logging.Formatter):
         return _line(record.created, record.levelname.lower(), record.name, record.getMessage(), fields)
 
 
-def setup(level: str = "info", flush_seconds: float = 0.0) -> None:
+def setup(level: str = "info", flush_seconds: float = 0.0, static: Mapping[str, Any] | None = None) -> None:
     """Route the ``stateworth`` loggers to stderr as JSON lines.
 
     ``flush_seconds`` > 0: :func:`info_line` lines are queued and written by a writer thread
-    every ``flush_seconds`` (module docstring); 0 writes each as it is made."""
+    every ``flush_seconds`` (module docstring); 0 writes each as it is made. ``static``: fields
+    put on every line (e.g. ``{"worker": 1}``)."""
     global _HANDLER
     if flush_seconds < 0:
         raise ValueError(f"flush_seconds must be 0 or more (got {flush_seconds})")
     _stop_writer()
+    _STATIC.clear()
+    _STATIC.update(static or {})
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(JsonFormatter())
     root = logging.getLogger(_ROOT)

@@ -18,7 +18,7 @@ import numpy as np
 
 from stateworth.errors import QueryError
 from stateworth.server import convert as cv
-from stateworth.server.errors import LoadError, ServiceError, invalid, to_status
+from stateworth.server.errors import LoadError, ServiceError, UnavailableError, invalid, to_status
 from stateworth.server.metrics import Metrics
 from stateworth.server.store import ModelStore, Served, parse_name
 from stateworth.server.work import WorkPool
@@ -422,34 +422,56 @@ def _entry_cell(model, entry) -> tuple:
 
 
 class AdminServicer(agrpc.ModelAdminServiceServicer):
-    def __init__(self, store: ModelStore, metrics: Metrics) -> None:
+    """Admin loads. In a worker of ``stateworth serve --workers N`` (``peers`` set) each load runs
+    on every worker through the supervisor and answers once all are done (:mod:`.peers`)."""
+
+    def __init__(self, store: ModelStore, metrics: Metrics, peers=None, timeout: float = 300.0) -> None:
         self.store = store
         self.metrics = metrics
+        self.peers = peers
+        self.timeout = timeout
 
     def _default(self, served: Served) -> bool:
         return self.store.snapshot.defaults.get(served.name) == served.version
 
-    @unary
-    def LoadModel(self, request, context):
+    def run_local(self, op: str, artifact: str):
+        """Do a load in this process: ``"load"`` one artifact, ``"reload"`` the directory."""
         try:
-            served, replaced = self.store.load_one(request.artifact)
+            out = self.store.load_one(artifact) if op == "load" else self.store.reload_all()
         except (LoadError, ServiceError, QueryError) as e:
             self.metrics.reload(False)
-            log.warning("load failed", extra={"fields": {"event": "load_failed", "error": e.__class__.__name__}})
+            log.warning(f"{op} failed", extra={"fields": {"event": f"{op}_failed", "error": e.__class__.__name__}})
             raise
         self.metrics.reload(True)
+        return out
+
+    def _run(self, op: str, artifact: str = ""):
+        if self.peers is None:
+            return self.run_local(op, artifact)
+        local, results = self.peers.coordinate(op, artifact, self.timeout)
+        if results is None or local is None:
+            raise UnavailableError(f"the workers did not all finish the {op} within {self.timeout:.0f} s; "
+                                   "retry, or see the server log")
+        kind, value = local
+        if kind == "err":
+            raise value
+        failed = [r for r in results if not r.get("ok")]
+        if failed:
+            r = failed[0]
+            raise UnavailableError(f"the {op} succeeded on this worker but failed on worker {r.get('worker')} "
+                                   f"({r.get('error')}); failed workers restart from the model directory; retry "
+                                   "to confirm")
+        return value
+
+    @unary
+    def LoadModel(self, request, context):
+        served, replaced = self._run("load", request.artifact)
         _note(context, model=served.name, version=served.version)
         return apb.LoadModelResponse(model=cv.model_version(served, self._default(served)), replaced=replaced)
 
     @unary
     def ReloadModels(self, request, context):
-        try:
-            snap, loaded, kept, dropped = self.store.reload_all()
-        except (LoadError, ServiceError) as e:
-            self.metrics.reload(False)
-            log.warning("reload failed", extra={"fields": {"event": "reload_failed", "error": e.__class__.__name__}})
-            raise
-        self.metrics.reload(True)
+        snap, loaded, kept, dropped = self._run("reload")
         resp = apb.ReloadModelsResponse(loaded_count=loaded, kept_count=kept, dropped_count=dropped)
         for s in snap.all():
             resp.models.append(cv.model_version(s, snap.defaults[s.name] == s.version, full=False))

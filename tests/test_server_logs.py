@@ -23,6 +23,7 @@ def stream(monkeypatch):
     yield buf
     root.handlers[:], root.level, root.propagate = saved[:3]
     logs._HANDLER = saved[3]
+    logs._STATIC.clear()
 
 
 def _docs(buf: io.StringIO) -> list[dict]:
@@ -39,6 +40,18 @@ def test_direct_line_equals_the_formatted_record(stream):
     assert a.pop("ts")[:10] == b.pop("ts")[:10]
     assert a == b == {"level": "info", "logger": "stateworth.server.access", "msg": "rpc", **fields}
     assert stream.getvalue().count("\n") == 2
+
+
+def test_static_fields_go_on_every_line(stream, monkeypatch):
+    monkeypatch.setattr("sys.stderr", stream)  # pytest's capture swaps stderr between fixture and test
+    logs.setup("info", static={"worker": 3})
+    log = logging.getLogger("stateworth.server")
+    logs.info_line(logging.getLogger("stateworth.server.access"), "rpc", {"event": "rpc"})
+    log.info("serving", extra={"fields": {"event": "serving"}})
+    assert [d["worker"] for d in _docs(stream)] == [3, 3]
+    logs.setup("info")
+    logs.info_line(logging.getLogger("stateworth.server.access"), "rpc", {"event": "rpc"})
+    assert "worker" not in _docs(stream)[-1]
 
 
 def test_timestamp_is_utc_iso_with_milliseconds(stream):

@@ -16,10 +16,17 @@ lines on stderr; --metrics-port serves Prometheus metrics at http://127.0.0.1:PO
 SIGTERM drains the calls in flight and exits 0. Health: grpc.health.v1, NOT_SERVING while no
 model is loaded.
 
+--workers N runs N server processes on the one port (SO_REUSEPORT: the kernel spreads new
+connections over them) under a supervisor that restarts a worker that dies, runs admin loads
+on every worker before answering, and merges the workers' metrics (each series gets a worker
+label). One process answers single-value calls on about one core; use one worker per core for
+throughput. Each worker holds every model in its own memory.
+
 Answers are model-based estimates under the model's causal assumptions; not accounting figures.
 
 example:
   stateworth serve models/ --port 50051 --token-file query.token --admin-token-file admin.token
+  stateworth serve models/ --workers 2 --metrics-port 9464
 """
 
 
@@ -31,7 +38,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--tls-key", help="PEM private key file")
     p.add_argument("--token-file", help="file holding the bearer token query calls must send")
     p.add_argument("--admin-token-file", help="file holding the bearer token admin calls (loads) must send")
-    p.add_argument("--threads", type=int, default=16, help="threads answering calls (default 16)")
+    p.add_argument("--threads", type=int, default=16, help="threads answering calls (default 16; per worker)")
+    p.add_argument("--workers", type=int, default=1,
+                   help="server processes sharing the port (default 1; one per core for throughput)")
+    p.add_argument("--worker-ports", type=int, default=0, metavar="BASE",
+                   help="with --workers: worker i also listens on BASE + i (default: free ports, logged)")
+    p.add_argument("--worker-index", type=int, help=argparse.SUPPRESS)
+    p.add_argument("--worker-port", type=int, help=argparse.SUPPRESS)
     p.add_argument("--max-batch", type=int, default=1_000_000, help="states per batch, chunk or cohort (default 10^6)")
     p.add_argument("--max-message-mb", type=float, default=64.0, help="largest message in MiB (default 64)")
     p.add_argument("--max-concurrent", type=int, default=256, help="calls in progress before RESOURCE_EXHAUSTED")
@@ -55,14 +68,17 @@ def run(args: argparse.Namespace) -> int:
     from stateworth.server import run as serve
     from stateworth.server.logs import setup
 
-    for opt in ("threads", "max_batch", "max_concurrent", "work_workers"):
+    for opt in ("threads", "max_batch", "max_concurrent", "work_workers", "workers"):
         if getattr(args, opt) < 1:
             raise QueryError(f"--{opt.replace('_', '-')} must be at least 1 (got {getattr(args, opt)})", field=opt)
     if args.max_message_mb <= 0:
         raise QueryError("--max-message-mb must be positive", field="max_message_mb")
     if args.log_flush_ms < 0:
         raise QueryError(f"--log-flush-ms must be 0 or more (got {args.log_flush_ms})", field="log_flush_ms")
-    setup(args.log_level, flush_seconds=args.log_flush_ms / 1000)
+    worker = {"worker": args.worker_index} if args.worker_index is not None else None
+    setup(args.log_level, flush_seconds=args.log_flush_ms / 1000, static=worker)
+    if args.workers > 1 and args.worker_index is None:
+        return _supervise(args)
     if args.no_access_log:
         import logging
         logging.getLogger("stateworth.server.access").setLevel(logging.WARNING)
@@ -73,5 +89,55 @@ def run(args: argparse.Namespace) -> int:
                           max_batch=args.max_batch, work_workers=args.work_workers, work_queue=args.work_queue,
                           work_seconds=args.work_seconds, drain_seconds=args.drain_seconds,
                           metrics_host=args.metrics_host, metrics_port=args.metrics_port,
-                          reflection=not args.no_reflection)
+                          reflection=not args.no_reflection, worker_index=args.worker_index,
+                          worker_port=args.worker_port)
     return serve(config)
+
+
+#: options passed on to every worker as they were given (flag, attribute)
+_PASSED = [("--host", "host"), ("--tls-cert", "tls_cert"), ("--tls-key", "tls_key"), ("--token-file", "token_file"),
+           ("--admin-token-file", "admin_token_file"), ("--threads", "threads"), ("--max-batch", "max_batch"),
+           ("--max-message-mb", "max_message_mb"), ("--max-concurrent", "max_concurrent"),
+           ("--work-workers", "work_workers"), ("--work-queue", "work_queue"), ("--work-seconds", "work_seconds"),
+           ("--drain-seconds", "drain_seconds"), ("--log-level", "log_level"), ("--log-flush-ms", "log_flush_ms")]
+
+
+def _supervise(args: argparse.Namespace) -> int:
+    """``--workers N``: check what every worker would refuse, then run the supervisor."""
+    import sys
+    from pathlib import Path
+
+    from stateworth.server import ConfigError, read_secret
+    from stateworth.server.supervisor import run_supervised
+
+    read_secret(args.token_file, "token")
+    read_secret(args.admin_token_file, "admin token")
+    if bool(args.tls_cert) != bool(args.tls_key):
+        raise ConfigError("TLS needs both --tls-cert and --tls-key", where="--tls-cert/--tls-key")
+    for f in (args.tls_cert, args.tls_key):
+        if f and not Path(f).is_file():
+            raise ConfigError("cannot read the TLS file (no such file)", where=f)
+    # file options become absolute: a worker resolves them wherever it runs
+    absolute = {"tls_cert", "tls_key", "token_file", "admin_token_file"}
+
+    def argv(index: int, port: int, worker_port: int) -> list[str]:
+        out = [sys.executable, "-m", "stateworth", "serve", str(Path(args.model_dir).resolve()), "--port", str(port),
+               "--worker-index", str(index), "--worker-port", str(worker_port)]
+        for flag, attr in _PASSED:
+            v = getattr(args, attr)
+            if v is not None:
+                out += [flag, str(Path(v).resolve()) if attr in absolute else str(v)]
+        if args.metrics_port is not None:
+            out += ["--metrics-port", "0"]
+        if args.no_reflection:
+            out.append("--no-reflection")
+        if args.no_access_log:
+            out.append("--no-access-log")
+        return out
+
+    if args.worker_ports < 0 or args.worker_ports + args.workers > 65536:
+        raise ConfigError(f"--worker-ports must leave room for {args.workers} ports below 65536 (got "
+                          f"{args.worker_ports})", where="--worker-ports")
+    return run_supervised(argv, args.workers, args.host, args.port, metrics_host=args.metrics_host,
+                          metrics_port=args.metrics_port, drain_seconds=args.drain_seconds,
+                          worker_base_port=args.worker_ports)

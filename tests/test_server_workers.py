@@ -1,0 +1,167 @@
+"""``stateworth serve --workers 2``: two worker processes on one port under a supervisor.
+
+The real command, started as a subprocess: both workers answer on the shared port and on their
+own ports, an admin reload or load answers only once every worker has done it, a failed load
+changes no worker, the metrics of both workers come back labelled, a killed worker is started
+again on its own port, SIGTERM stops everything with status 0, and a worker that cannot start
+makes the command fail with one line.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+import urllib.request
+
+import pytest
+
+from serving import MODEL, ROOT, STATE, ServerProcess, write_artifact
+from stateworth.clients import client as cl
+from stateworth.server.supervisor import label_worker
+
+
+def test_metrics_lines_get_the_worker_label_and_comments_once():
+    text = ("# HELP a_total A.\n# TYPE a_total counter\na_total{method=\"/x\",code=\"OK\"} 3\n"
+            "# TYPE g gauge\ng 1\n")
+    seen: set[str] = set()
+    first = label_worker(text, 0, seen)
+    second = label_worker(text, 1, seen)
+    assert first == ["# HELP a_total A.", "# TYPE a_total counter", 'a_total{worker="0",method="/x",code="OK"} 3',
+                     "# TYPE g gauge", 'g{worker="0"} 1']
+    assert second == ['a_total{worker="1",method="/x",code="OK"} 3', 'g{worker="1"} 1']
+
+
+@pytest.fixture(scope="module")
+def workers(tmp_path_factory):
+    d = tmp_path_factory.mktemp("worker-models")
+    v1 = write_artifact(d, "tiny", seed=0)
+    srv = ServerProcess(d, "--workers", "2", "--threads", "2", "--metrics-port", "0", "--log-flush-ms", "0")
+    yield srv, d, v1
+    assert srv.stop() == 0
+
+
+def _serving(srv) -> dict:
+    return srv.wait_for("serving")
+
+
+def _ready(srv) -> dict[int, dict]:
+    """The newest worker_ready line of each worker."""
+    out: dict[int, dict] = {}
+    for ev in list(srv.events):
+        if ev.get("event") == "worker_ready":
+            out[ev["worker"]] = ev
+    return out
+
+
+def _version_at(port: int) -> str:
+    with cl.Client(f"127.0.0.1:{port}", timeout=20) as c:
+        return c.value(MODEL, STATE).version
+
+
+def test_both_workers_answer_on_the_shared_port_and_their_own(workers):
+    srv, _d, v1 = workers
+    serving = _serving(srv)
+    assert serving["workers"] == 2 and len(serving["worker_ports"]) == 2
+    assert all("worker" not in ev for ev in srv.events if ev.get("event") in ("listening", "serving"))
+    for k, port in enumerate(serving["worker_ports"]):
+        assert _version_at(port) == v1
+    before = len(srv.events)
+    for _ in range(24):  # a fresh connection each: the kernel spreads them over the workers
+        with cl.Client(srv.target, timeout=20) as c:
+            assert c.value(MODEL, STATE).version == v1
+    events = srv.wait_until(lambda evs: sum(1 for e in evs[before:] if e.get("event") == "rpc") >= 24)
+    answered_by = {e["worker"] for e in events[before:] if e.get("event") == "rpc"}
+    assert answered_by == {0, 1}
+    with cl.Client(srv.target, timeout=20) as c:
+        assert c.health() == "SERVING"
+
+
+def test_reload_answers_once_every_worker_serves_the_new_version(workers):
+    srv, d, v1 = workers
+    ports = _serving(srv)["worker_ports"]
+    v2 = write_artifact(d, "tiny", seed=1)
+    assert v2 != v1
+    with cl.Client(srv.target, timeout=60) as c:
+        r = c.reload_models()
+    assert [m.version for m in r.models] == [v2]
+    assert [_version_at(p) for p in ports] == [v2, v2]
+    # a load that fails on every worker changes none of them
+    with cl.Client(srv.target, timeout=60) as c:
+        with pytest.raises(cl.NotFound) as e:
+            c.load_model("missing-artifact")
+    assert "missing-artifact" in str(e.value)
+    assert [_version_at(p) for p in ports] == [v2, v2]
+    # and a load of one artifact reaches both
+    write_artifact(d, "tiny", seed=0)
+    with cl.Client(srv.target, timeout=60) as c:
+        assert c.load_model("tiny").model.version == v1
+    assert [_version_at(p) for p in ports] == [v1, v1]
+
+
+def test_metrics_of_both_workers_come_back_labelled(workers):
+    srv, _d, _v1 = workers
+    for port in _serving(srv)["worker_ports"]:
+        _version_at(port)
+    with urllib.request.urlopen(f"http://127.0.0.1:{srv.metrics_port}/metrics", timeout=10) as r:
+        text = r.read().decode()
+    assert "stateworth_workers_ready 2" in text
+    for k in (0, 1):
+        assert f'stateworth_models_loaded{{worker="{k}"}} 1' in text
+    assert text.count("# TYPE stateworth_requests_total counter") == 1
+    assert 'stateworth_requests_total{worker="' in text
+
+
+def test_a_killed_worker_is_started_again_on_its_own_port(workers):
+    srv, _d, _v1 = workers
+    ports = _serving(srv)["worker_ports"]
+    old = _ready(srv)[1]
+    os.kill(old["pid"], signal.SIGKILL)
+    srv.wait_until(lambda evs: any(e.get("event") == "worker_exited" and e.get("worker_index") == 1 for e in evs),
+                   timeout=30)
+    srv.wait_until(lambda evs: any(e.get("event") == "worker_ready" and e.get("worker") == 1
+                                   and e.get("pid") != old["pid"] for e in evs), timeout=180)
+    new = _ready(srv)[1]
+    assert new["worker_port"] == ports[1] == old["worker_port"]
+    expected = _version_at(ports[0])
+    assert _version_at(ports[1]) == expected
+    with urllib.request.urlopen(f"http://127.0.0.1:{srv.metrics_port}/metrics", timeout=10) as r:
+        assert "stateworth_worker_restarts_total 1" in r.read().decode()
+
+
+def test_sigterm_stops_every_worker(tmp_path):
+    write_artifact(tmp_path, "tiny", seed=0)
+    srv = ServerProcess(tmp_path, "--workers", "2")
+    pids = [ev["pid"] for ev in _ready(srv).values()]
+    assert srv.stop() == 0
+    events = srv.wait_until(lambda evs: any(e.get("event") == "stopped" and "worker" not in e for e in evs))
+    stopped = next(e for e in events if e.get("event") == "stopped" and "worker" not in e)
+    assert stopped["worker_exit_codes"] == [0, 0]
+    assert {e["worker"] for e in events if e.get("event") == "stopped" and "worker" in e} == {0, 1}
+    for pid in pids:
+        with pytest.raises(ProcessLookupError):
+            os.kill(pid, 0)
+
+
+def test_a_worker_that_cannot_start_fails_the_command(tmp_path):
+    bad = tmp_path / "broken"
+    bad.mkdir()
+    (bad / "manifest.json").write_text("{ not json")
+    t0 = time.monotonic()
+    r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", "0", "--workers", "2"],
+                       capture_output=True, text=True, cwd=ROOT, timeout=300,
+                       env=dict(os.environ, JAX_PLATFORMS="cpu"))
+    assert r.returncode == 1
+    assert "before serving" in r.stderr and "broken" in r.stderr
+    assert time.monotonic() - t0 < 300
+
+
+@pytest.mark.parametrize("args, message", [(["--workers", "0"], "--workers must be at least 1"),
+                                           (["--workers", "2", "--worker-ports", "65535"], "--worker-ports")])
+def test_bad_worker_options_are_refused_in_one_line(tmp_path, args, message):
+    r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", "0", *args],
+                       capture_output=True, text=True, cwd=ROOT, timeout=120)
+    assert r.returncode == 1
+    assert message in r.stderr and "Traceback" not in r.stderr
