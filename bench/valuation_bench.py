@@ -13,7 +13,10 @@ time is excluded (and reported separately where it matters):
   that market's fixed cell is re-solved), and +3 points on an engagement up-move of plus members
   everywhere (the whole grid);
 * the 200-draw interval (all draws in one batched computation) against 200 separate solves;
-  the separate solves are timed on ``--separate`` draws and scaled to 200 (said so in the output).
+  the separate solves are timed on ``--separate`` draws after one warm-up and scaled to 200
+  (said so in the output). The batched computation's one compile is reported apart: the
+  ratio compares like with like (no compile on either side), and a second ratio counts one
+  compile on each side.
 
 Writes bench/out/valuation.json (temp file, then rename). Run: .venv/bin/python bench/valuation_bench.py
 Options: --size 10k for a quick run, --draws, --separate, --batch.
@@ -176,17 +179,28 @@ def main() -> None:
     c0 = {"market": "m00", "tenure": "0", "status": "prospect", "engagement": "e0", "band": grid.axis("band").levels[-1]}
     acq = vd.acquisition(c0, "basic")
     res["acquisition_example"] = {"value": acq.value, "interval": acq.interval, "level": acq.level}
-    res["batched_speedup_vs_separate"] = per * a.draws / vd.draw_stats["seconds"]
-    res["batched_speedup_vs_separate_solve_only"] = per_solve * a.draws / vd.draw_stats["seconds"]
+    # like for like: the separate solves are timed after their one compile (reported apart), so
+    # the batched time is compared without its one compile too; and end to end, each with its one
+    # compile (the batched compile is timed by the AOT compile in solve_draws)
+    comp = vd.draw_stats.get("compile_seconds", 0.0)
+    batched_steady = vd.draw_stats["seconds"] - comp
+    sep_compile = res["separate_first_solve_with_compile_seconds"] - per  # the first drawn model: build + solve + compile
+    res["batched"]["compile_seconds"] = comp
+    res["batched"]["draws_seconds_without_compile"] = batched_steady
+    res["batched_speedup_vs_separate"] = per * a.draws / batched_steady
+    res["batched_speedup_vs_separate_solve_only"] = per_solve * a.draws / batched_steady
+    res["batched_speedup_vs_separate_with_one_compile_each"] = (per * a.draws + sep_compile) / vd.draw_stats["seconds"]
     res["note"] = (f"separate solves timed on {a.separate} draws after one untimed warm-up (median; each = build the "
-                   f"drawn model + cold solve, and the solve alone) and scaled to {a.draws}; the batched time "
-                   "includes its one compile")
+                   f"drawn model + cold solve, and the solve alone) and scaled to {a.draws}; the batched time is "
+                   "compared without its one compile (reported apart), and end to end with one compile each")
     res["complete"] = True
-    print(f"draws: batched {vd.draw_stats['seconds']:.1f} s vs separate ~{per * a.draws:.1f} s "
-          f"(solves alone ~{per_solve * a.draws:.1f} s)", flush=True)
+    print(f"draws: batched {batched_steady:.1f} s + {comp:.1f} s compile vs separate ~{per * a.draws:.1f} s "
+          f"(solves alone ~{per_solve * a.draws:.1f} s): {res['batched_speedup_vs_separate']:.2f}x, "
+          f"{res['batched_speedup_vs_separate_with_one_compile_each']:.2f}x with one compile each", flush=True)
     save()
     print(json.dumps({k: res[k] for k in ("states", "lookup_seconds_per_million_states", "adjoint_over_forward",
-                                          "batched_speedup_vs_separate", "batched_speedup_vs_separate_solve_only")},
+                                          "batched_speedup_vs_separate", "batched_speedup_vs_separate_solve_only",
+                                          "batched_speedup_vs_separate_with_one_compile_each")},
                      default=float))
 
 

@@ -85,3 +85,26 @@ def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
     md = model.with_tables({a: model.draws[a][5] for a in model.draws})
     ref = solve(md, "revenue", horizon=6).values[v.index(PROSPECT), 0]
     assert v.draw_values(np.array([v.index(PROSPECT)]), "revenue", horizon=6)[5, 0] == pytest.approx(ref, rel=1e-12)
+
+
+def test_draws_in_chunks_reuse_one_compile_and_pad_the_last_chunk(monkeypatch):
+    # 5 draws in chunks of 2: three calls of one compiled computation, the last chunk padded
+    # with its last draw; every draw equals its own dense solve (numpy LU on the explicit matrix)
+    import stateworth.valuation.draws as draws_mod
+    monkeypatch.setattr(draws_mod, "DENSE_MAX", 10)
+    monkeypatch.setattr(draws_mod, "DRAW_CHUNK", 2)
+    spec = tiny_spec(markets=2, tenure=3)
+    t = tiny_tables(spec, seed=3)
+    model = compile_model(spec, t, draws=dirichlet_draws(t, 5, seed=9), source="chunks")
+    sol = solve(model, "revenue", tol=1e-11)
+    tabs = {a: model.draws[a] for a in model.draws}
+    rhs = draws_mod.draw_rewards(model, tabs, ["revenue"])
+    x, stats = draws_mod.solve_draws(model, tabs, rhs, sol.values, tol=1e-10)
+    assert stats["chunk"] == 2 and x.shape == (5, model.n_states, 1)
+    x2, stats2 = draws_mod.solve_draws(model, tabs, rhs, sol.values, tol=1e-10)
+    assert stats2["compile_seconds"] == 0.0  # the same shapes: the compiled computation is reused
+    np.testing.assert_array_equal(x, x2)
+    for d in range(5):
+        md = model.with_tables({a: model.draws[a][d] for a in model.draws})
+        ref = solve(md, "revenue", method="dense").values[:, 0]
+        np.testing.assert_allclose(x[d, :, 0], ref, rtol=1e-8)
