@@ -80,13 +80,19 @@ class Metrics:
 
 def serve_metrics(metrics: Metrics, host: str, port: int) -> ThreadingHTTPServer:
     """Start the /metrics endpoint in a daemon thread; returns the HTTP server (``server_port``)."""
+    return serve_exposition(metrics.render, host, port)
+
+
+def serve_exposition(render: Callable[[], str], host: str, port: int) -> ThreadingHTTPServer:
+    """Serve ``render()`` (exposition text) at /metrics from a daemon thread (OSError when the
+    address cannot be bound)."""
 
     class Handler(BaseHTTPRequestHandler):
         def do_GET(self) -> None:  # noqa: N802 - http.server's naming
             if self.path.split("?")[0] != "/metrics":
                 self.send_error(404, "only /metrics is served here")
                 return
-            body = metrics.render().encode()
+            body = render().encode()
             self.send_response(200)
             self.send_header("Content-Type", "text/plain; version=0.0.4; charset=utf-8")
             self.send_header("Content-Length", str(len(body)))

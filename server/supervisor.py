@@ -45,11 +45,12 @@ import threading
 import time
 import urllib.request
 from dataclasses import dataclass, field
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import ThreadingHTTPServer
 from typing import Callable
 
 from stateworth.errors import StateworthError
 from stateworth.server import logs
+from stateworth.server.metrics import serve_exposition
 
 log = logging.getLogger("stateworth.server")
 
@@ -268,30 +269,11 @@ class Supervisor:
         return "\n".join(out) + "\n"
 
     def _serve_metrics(self) -> None:
-        sup = self
-
-        class Handler(BaseHTTPRequestHandler):
-            def do_GET(self) -> None:  # noqa: N802 - http.server's naming
-                if self.path.split("?")[0] != "/metrics":
-                    self.send_error(404, "only /metrics is served here")
-                    return
-                body = sup.render_metrics().encode()
-                self.send_response(200)
-                self.send_header("Content-Type", "text/plain; version=0.0.4; charset=utf-8")
-                self.send_header("Content-Length", str(len(body)))
-                self.end_headers()
-                self.wfile.write(body)
-
-            def log_message(self, *args) -> None:
-                return
-
         try:
-            self._httpd = ThreadingHTTPServer((self.metrics_host, self.metrics_port), Handler)
+            self._httpd = serve_exposition(self.render_metrics, self.metrics_host, self.metrics_port)
         except OSError as e:
             raise StateworthError(f"cannot serve metrics on {self.metrics_host}:{self.metrics_port} ({e.strerror})",
                                   where="--metrics-port") from None
-        self._httpd.daemon_threads = True
-        threading.Thread(target=self._httpd.serve_forever, name="stateworth-metrics", daemon=True).start()
 
     # ---- life cycle --------------------------------------------------------------------------
     def start(self) -> "Supervisor":
