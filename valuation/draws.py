@@ -235,21 +235,30 @@ def compiled(fn: Callable, args: tuple, static: Mapping[str, Any]) -> tuple[Call
     return exe, seconds
 
 
-def solve_draws(model, stacked: Mapping[str, np.ndarray], rhs: np.ndarray | jax.Array, x0: np.ndarray, *,
+def solve_draws(model, stacked: Mapping[str, np.ndarray],
+                rhs: np.ndarray | jax.Array | Callable[[Mapping[str, jax.Array]], jax.Array], x0: np.ndarray, *,
                 tol: float = 1e-10, transpose: bool = False, restart: int = DRAW_RESTART, max_iter: int = 3000,
                 batch: int | None = None) -> tuple[np.ndarray, dict]:
     """Solve ``(I - beta P_d) X_d = rhs_d`` (or the transpose) for every draw d.
 
-    ``stacked``: ``{axis: (D, *shape)}``; ``rhs``: ``(D, n, k)``; ``x0``: ``(n, k)`` shared start;
+    ``stacked``: ``{axis: (D, *shape)}``; ``rhs``: ``(D, n, k)``, or a function of a chunk's
+    drawn tables ``{axis: (m, *shape)}`` giving its ``(m, n, k)`` right-hand sides (so that only
+    one chunk's tables and rewards are in memory at a time); ``x0``: ``(n, k)`` shared start;
     ``batch``: draws vectorised at a time (default: see :func:`_batch_size`). Draws go through
     one compiled computation in chunks of :data:`DRAW_CHUNK` (stats: ``compile_seconds``, the
     one-off compile, and ``solve_seconds``). Returns ``(X (D, n, k), stats)``; raises
     ConvergenceError if any draw failed."""
-    rhs = jnp.asarray(rhs)
-    D, n, k = rhs.shape
+    D = int(next(iter(stacked.values())).shape[0]) if stacked else 0
+    rhs_of = rhs if callable(rhs) else None
+    if rhs_of is None:
+        rhs = jnp.asarray(rhs)
+        D = rhs.shape[0]
+    n, k = np.shape(x0)
     beta = jnp.float64(model.beta)
     if n <= DENSE_MAX:
         tabs = {a: jnp.asarray(v) for a, v in stacked.items()}
+        if rhs_of is not None:
+            rhs = rhs_of(tabs)
         x, res = _dense_draws(model.operator, tabs, rhs, beta, transpose=transpose)
         res = float(jnp.max(res))
         stats = {"method": "dense", "draws": D, "residual": res}
@@ -270,7 +279,7 @@ def solve_draws(model, stacked: Mapping[str, np.ndarray], rhs: np.ndarray | jax.
         m = min(size, D - s0)
         idx = np.minimum(np.arange(s0, s0 + size), D - 1)  # the last chunk repeats its last draw
         tabs = {a: jnp.asarray(np.asarray(v)[idx]) for a, v in stacked.items()}
-        args = (model.operator, pc, tabs, rhs[idx], x0j, betaj, base)
+        args = (model.operator, pc, tabs, rhs_of(tabs) if rhs_of is not None else rhs[idx], x0j, betaj, base)
         exe, c = compiled(_gmres_draws, args, static)
         compile_s += c
         got = [np.asarray(y) for y in exe(*args)]

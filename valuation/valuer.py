@@ -101,8 +101,10 @@ class Valuer:
             tabs, D = stacked_tables(model)
             if D:
                 t0 = time.perf_counter()
-                rhs = draw_rewards(model, tabs, names)
-                dv, stats = solve_draws(model, tabs, rhs, sol.values, tol=max(tol, draw_tol), batch=chunk)
+                # each chunk's rewards from its own tables: one chunk's drawn tables in memory at a time
+                parts = [reward_parts(model, s) for s in names]
+                dv, stats = solve_draws(model, tabs, lambda t: rewards_for_draws(model.operator, t, parts),
+                                        sol.values, tol=max(tol, draw_tol), batch=chunk)
                 stats["seconds"] = time.perf_counter() - t0
         return cls(model, sol, dv, tol, tabs, stats)
 
