@@ -118,7 +118,8 @@ class Server:
                                 options=opts, maximum_concurrent_rpcs=config.max_concurrent)
         valuation_service_pb2_grpc.add_ValuationServiceServicer_to_server(
             ValuationServicer(self.store, self.pool, Limits(max_batch=config.max_batch)), self.grpc)
-        self.admin = AdminServicer(self.store, self.metrics, self.peers, config.work_seconds)
+        # a relayed load runs on every worker, each loading and solving: as long as a start may take
+        self.admin = AdminServicer(self.store, self.metrics, self.peers, max(config.work_seconds, 600.0))
         admin_service_pb2_grpc.add_ModelAdminServiceServicer_to_server(self.admin, self.grpc)
         health_pb2_grpc.add_HealthServicer_to_server(self.health, self.grpc)
         if config.reflection:
@@ -201,6 +202,7 @@ class Server:
             self._httpd = serve_metrics(self.metrics, "127.0.0.1", 0)
             self.metrics_port = self._httpd.server_port
         self.peers.run_op = self.admin.run_local
+        self.peers.versions = lambda: sorted(f"{s.name}@{s.version}" for s in self.store.snapshot.all())
         self.peers.start()
         log.info("worker serving", extra={"fields": {
             "event": "worker_ready", "port": self.port, "worker_port": self.worker_port, "pid": os.getpid(),

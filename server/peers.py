@@ -11,7 +11,8 @@ supervisor, its stdin carries the supervisor's commands. Events:
   serving, on the shared port P and on its own port W;
 * ``{"event": "coordinate", "id": ID, "op": "reload" | "load", "artifact": A}``: an admin call
   on this worker asks every worker to do the same load;
-* ``{"event": "done", "id": ID, "ok": bool, "code": ..., "error": ...}``: this worker's outcome.
+* ``{"event": "done", "id": ID, "ok": bool, "code": ..., "error": ..., "versions": [...]}``:
+  this worker's outcome and, after a success, the ``name@version`` it now serves.
 
 Commands: ``{"op": "reload" | "load", "id": ID, "artifact": A}`` (do it, answer ``done``) and
 ``{"op": "result", "id": ID, "results": [...]}`` (every worker's outcome, to the asking worker).
@@ -44,7 +45,9 @@ class PeerLink:
         self._lock = threading.Lock()
         self._waiting: dict[str, list] = {}  # id -> [event, results]
         self._local: dict[str, tuple[str, Any]] = {}  # id -> ("ok", result) | ("err", exception)
+        self._state = threading.Lock()  # _waiting and _local
         self.run_op: Callable[[str, str], Any] | None = None
+        self.versions: Callable[[], list[str]] | None = None  # what this worker serves, name@version
         self.on_close: Callable[[], None] | None = None
 
     def start(self) -> "PeerLink":
@@ -70,11 +73,13 @@ class PeerLink:
         they did not all answer within ``timeout`` seconds)."""
         key = uuid.uuid4().hex
         done = threading.Event()
-        self._waiting[key] = [done, None]
+        with self._state:
+            self._waiting[key] = [done, None]
         self.send({"event": "coordinate", "id": key, "op": op, "artifact": artifact})
         done.wait(timeout)
-        results = self._waiting.pop(key)[1]
-        return self._local.pop(key, None), results
+        with self._state:
+            results = self._waiting.pop(key)[1]
+            return self._local.pop(key, None), results
 
     # ---- the command reader ----------------------------------------------------------------
     def _read(self) -> None:
@@ -84,14 +89,17 @@ class PeerLink:
                     doc = json.loads(line)
                 except ValueError:
                     continue
+                if not isinstance(doc, dict):
+                    continue
                 op = doc.get("op")
                 if op in OPS:
                     threading.Thread(target=self._do, args=(doc,), name="stateworth-peer-op", daemon=True).start()
                 elif op == "result":
-                    w = self._waiting.get(str(doc.get("id")))
-                    if w is not None:
-                        w[1] = list(doc.get("results") or [])
-                        w[0].set()
+                    with self._state:
+                        w = self._waiting.get(str(doc.get("id")))
+                        if w is not None:
+                            w[1] = list(doc.get("results") or [])
+                            w[0].set()
         except (OSError, ValueError):
             pass
         if self.on_close is not None:
@@ -104,14 +112,17 @@ class PeerLink:
             result = self.run_op(op, artifact) if self.run_op is not None else None
             outcome: tuple[str, Any] = ("ok", result)
             out["ok"] = True
+            if self.versions is not None:
+                out["versions"] = self.versions()
         except Exception as e:  # noqa: BLE001 - every outcome goes back to the supervisor
             from stateworth.server.errors import to_status
 
             outcome = ("err", e)
             status, _field = to_status(e)
             out.update(ok=False, code=status.code.name, error=_message(e))
-        if key in self._waiting:
-            self._local[key] = outcome
+        with self._state:
+            if key in self._waiting:  # this worker asked: its own outcome answers the call
+                self._local[key] = outcome
         self.send(out)
 
 

@@ -453,14 +453,14 @@ class AdminServicer(agrpc.ModelAdminServiceServicer):
             raise UnavailableError(f"the workers did not all finish the {op} within {self.timeout:.0f} s; "
                                    "retry, or see the server log")
         kind, value = local
-        if kind == "err":
-            raise value
         failed = [r for r in results if not r.get("ok")]
-        if failed:
+        if failed and len(failed) < len(results):  # mixed: say so, whichever side this worker is on
             r = failed[0]
-            raise UnavailableError(f"the {op} succeeded on this worker but failed on worker {r.get('worker')} "
-                                   f"({r.get('error')}); failed workers restart from the model directory; retry "
-                                   "to confirm")
+            raise UnavailableError(f"the {op} succeeded on {len(results) - len(failed)} of {len(results)} workers; "
+                                   f"worker {r.get('worker')}: {r.get('error')}; the failed workers restart from the "
+                                   "model directory; retry to confirm")
+        if kind == "err":  # failed everywhere: nothing changed, the error is this worker's own
+            raise value
         return value
 
     @unary

@@ -100,25 +100,59 @@ def reserve_port(host: str, port: int) -> socket.socket:
     return s
 
 
-def label_worker(text: str, index: int, seen: set[str]) -> list[str]:
-    """Prometheus exposition ``text`` of one worker with ``worker="index"`` on every sample;
-    comment lines already in ``seen`` are dropped (each HELP/TYPE once)."""
+def _family(line: str) -> str:
+    """The metric family a sample or comment line belongs to (histogram series share one)."""
+    if line.startswith("#"):
+        parts = line.split()
+        return parts[2] if len(parts) > 2 else ""
+    name = line.split("{", 1)[0].split(" ", 1)[0]
+    for suffix in ("_bucket", "_sum", "_count"):
+        if name.endswith(suffix):
+            return name[: -len(suffix)]
+    return name
+
+
+def merge_workers(texts: list[tuple[int, str]]) -> list[str]:
+    """The Prometheus exposition texts of several workers as one: every sample gets a
+    ``worker="i"`` label, and each metric family is written once, its HELP/TYPE lines (from the
+    first worker that has them) followed by the samples of every worker, as the format asks."""
+    comments: dict[str, list[str]] = {}
+    samples: dict[str, list[str]] = {}
+    for index, text in texts:
+        for line in text.splitlines():
+            if not line.strip():
+                continue
+            fam = _family(line)
+            if line.startswith("#"):
+                have = comments.setdefault(fam, [])
+                if line not in have:
+                    have.append(line)
+                samples.setdefault(fam, [])
+                continue
+            name, _, rest = line.partition(" ")
+            if "{" in name:
+                base, labels = name.split("{", 1)
+                labelled = f'{base}{{worker="{index}",{labels} {rest}' if labels != "}" else f'{base}{{worker="{index}"}} {rest}'
+            else:
+                labelled = f'{name}{{worker="{index}"}} {rest}'
+            comments.setdefault(fam, [])
+            samples.setdefault(fam, []).append(labelled)
     out = []
-    for line in text.splitlines():
-        if not line.strip():
-            continue
-        if line.startswith("#"):
-            if line not in seen:
-                seen.add(line)
-                out.append(line)
-            continue
-        name, _, rest = line.partition(" ")
-        if "{" in name:
-            base, labels = name.split("{", 1)
-            out.append(f'{base}{{worker="{index}",{labels} {rest}' if labels != "}" else f'{base}{{worker="{index}"}} {rest}')
-        else:
-            out.append(f'{name}{{worker="{index}"}} {rest}')
+    for fam in samples:
+        out += comments.get(fam, []) + samples[fam]
     return out
+
+
+def port_free(host: str, port: int) -> bool:
+    """Whether ``host:port`` can be bound by a socket without SO_REUSEPORT (nobody listens
+    there, our own workers included)."""
+    family = socket.AF_INET6 if ":" in host else socket.AF_INET
+    with socket.socket(family, socket.SOCK_STREAM) as s:
+        try:
+            s.bind(("127.0.0.1" if host == "localhost" else host, port))
+        except OSError:
+            return False
+    return True
 
 
 class Supervisor:
@@ -127,7 +161,8 @@ class Supervisor:
 
     def __init__(self, argv: Callable[[int, int, int], list[str]], n: int, host: str, port: int,
                  metrics_host: str = "127.0.0.1", metrics_port: int | None = None, drain_seconds: float = 10.0,
-                 start_timeout: float = START_TIMEOUT, worker_base_port: int = 0) -> None:
+                 start_timeout: float = START_TIMEOUT, worker_base_port: int = 0,
+                 coordinate_seconds: float = START_TIMEOUT) -> None:
         if n < 2:
             raise ValueError("a supervisor runs at least two workers")
         self.argv = argv
@@ -138,6 +173,7 @@ class Supervisor:
         self.metrics_port = metrics_port
         self.drain_seconds = drain_seconds
         self.start_timeout = start_timeout
+        self.coordinate_seconds = coordinate_seconds
         self.workers: list[_Worker | None] = [None] * n
         #: each worker's own port (base + i when ``worker_base_port``; else free ports, kept
         #: across restarts)
@@ -148,15 +184,19 @@ class Supervisor:
         self._pending: dict[str, dict] = {}
         self._pending_lock = threading.Lock()
         self._httpd: ThreadingHTTPServer | None = None
+        self._life = threading.Lock()  # spawning vs stopping
         self._started = False  # every worker was ready once: from then on, exits are restarted
         self.restarts_total = 0
 
     # ---- workers -------------------------------------------------------------------------------
-    def _spawn(self, index: int, restarts: int = 0, delay: float = RESTART_FIRST) -> _Worker:
-        proc = subprocess.Popen(self.argv(index, self.port, self.worker_ports[index]), stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                                stderr=None, text=True, bufsize=1, start_new_session=True)
-        w = _Worker(index, proc, time.monotonic(), restarts=restarts, delay=delay)
-        self.workers[index] = w
+    def _spawn(self, index: int, restarts: int = 0, delay: float = RESTART_FIRST) -> _Worker | None:
+        with self._life:  # never a new worker once stop() has taken the list of workers to end
+            if self._stopping.is_set():
+                return None
+            proc = subprocess.Popen(self.argv(index, self.port, self.worker_ports[index]), stdin=subprocess.PIPE,
+                                    stdout=subprocess.PIPE, stderr=None, text=True, bufsize=1, start_new_session=True)
+            w = _Worker(index, proc, time.monotonic(), restarts=restarts, delay=delay)
+            self.workers[index] = w
         threading.Thread(target=self._read, args=(w,), name=f"stateworth-worker-{index}", daemon=True).start()
         return w
 
@@ -165,6 +205,8 @@ class Supervisor:
             try:
                 doc = json.loads(line)
             except ValueError:
+                continue
+            if not isinstance(doc, dict):
                 continue
             ev = doc.get("event")
             if ev == "ready":
@@ -185,7 +227,9 @@ class Supervisor:
 
     def _gone(self, w: _Worker, code: int) -> None:
         """A worker's pipe closed: count it out of pending loads; restart it unless stopping."""
-        for key in list(self._pending):
+        with self._pending_lock:
+            keys = list(self._pending)
+        for key in keys:
             self._done(w.index, {"id": key, "ok": False, "code": "UNAVAILABLE", "error": f"worker {w.index} exited"})
         if self._stopping.is_set() or self.workers[w.index] is not w:
             return
@@ -210,26 +254,41 @@ class Supervisor:
 
     # ---- admin loads -------------------------------------------------------------------------
     def _coordinator(self) -> None:
-        """One load at a time: send it to every live worker, wait for all, answer the asker."""
+        """One load at a time: send it to every live worker, wait for all (at most
+        ``coordinate_seconds``), answer the asker. Workers that failed while others succeeded,
+        that did not answer, or that ended up serving other versions than the asker (the
+        directory changed under the load) are restarted: they start again from the directory."""
         while True:
             item = self._jobs.get()
             if item is None:
                 return
             origin, doc = item
             key = str(doc.get("id"))
-            live = [w for w in self.workers if w is not None and w.ready.is_set() and w.proc.poll() is None]
-            state = {"expected": {w.index for w in live}, "results": {}, "done": threading.Event()}
-            with self._pending_lock:
+            state = {"expected": set(), "results": {}, "done": threading.Event()}
+            with self._pending_lock:  # registered before the workers are chosen: an exit counts
                 self._pending[key] = state
+                live = [w for w in self.workers if w is not None and w.proc.poll() is None
+                        and (w.ready.is_set() or w is origin)]
+                state["expected"] = {w.index for w in live}
             cmd = {"op": doc.get("op"), "id": key, "artifact": doc.get("artifact", "")}
             for w in live:
                 w.send(cmd)
             if not state["expected"]:
                 state["done"].set()
-            state["done"].wait()
+            state["done"].wait(self.coordinate_seconds)
             with self._pending_lock:
                 self._pending.pop(key, None)
-            results = [dict(state["results"][i], worker=i) for i in sorted(state["results"])]
+                got = dict(state["results"])
+            for i in state["expected"] - set(got):
+                got[i] = {"ok": False, "code": "UNAVAILABLE",
+                          "error": f"worker {i} did not finish within {self.coordinate_seconds:.0f} s"}
+            mine = got.get(origin.index, {}).get("versions")
+            for r in got.values():
+                if r.get("ok") and mine is not None and r.get("versions") != mine:
+                    r.update(ok=False, code="UNAVAILABLE",
+                             error="serves other versions than the asking worker (the model directory changed "
+                                   "during the load)")
+            results = [{"worker": i, **{k: got[i].get(k) for k in ("ok", "code", "error")}} for i in sorted(got)]
             origin.send({"op": "result", "id": key, "results": results})
             ok = [r for r in results if r.get("ok")]
             if ok and len(ok) < len(results):  # mixed: the failed ones start again from the directory
@@ -242,27 +301,24 @@ class Supervisor:
             state = self._pending.get(str(doc.get("id")))
             if state is None or index not in state["expected"] or index in state["results"]:
                 return
-            state["results"][index] = {k: doc.get(k) for k in ("ok", "code", "error")}
+            state["results"][index] = {k: doc.get(k) for k in ("ok", "code", "error", "versions")}
             if set(state["results"]) >= state["expected"]:
                 state["done"].set()
 
     # ---- metrics -----------------------------------------------------------------------------
     def render_metrics(self) -> str:
-        seen: set[str] = set()
-        out: list[str] = []
-        ready = 0
+        texts: list[tuple[int, str]] = []
         for w in list(self.workers):
             if w is None or not w.ready.is_set() or w.metrics_port is None or w.proc.poll() is not None:
                 continue
             try:
                 with urllib.request.urlopen(f"http://127.0.0.1:{w.metrics_port}/metrics", timeout=5) as r:
-                    text = r.read().decode()
+                    texts.append((w.index, r.read().decode()))
             except OSError:
                 continue
-            ready += 1
-            out += label_worker(text, w.index, seen)
+        out = merge_workers(texts)
         out += ["# HELP stateworth_workers_ready Workers answering calls.", "# TYPE stateworth_workers_ready gauge",
-                f"stateworth_workers_ready {ready}",
+                f"stateworth_workers_ready {len(texts)}",
                 "# HELP stateworth_worker_restarts_total Workers restarted by the supervisor.",
                 "# TYPE stateworth_worker_restarts_total counter",
                 f"stateworth_worker_restarts_total {self.restarts_total}"]
@@ -276,9 +332,17 @@ class Supervisor:
                                   where="--metrics-port") from None
 
     # ---- life cycle --------------------------------------------------------------------------
-    def start(self) -> "Supervisor":
-        """Reserve the port, start every worker, return once all are ready. Raises
-        WorkerStartError (after stopping the others) when one exits before it is ready."""
+    def start(self, stop: threading.Event | None = None) -> "Supervisor":
+        """Reserve the port, start every worker, return once all are ready (or once ``stop`` is
+        set). Raises WorkerStartError (after stopping the others) when one exits before it is
+        ready."""
+        # SO_REUSEPORT would let the workers share a port with another server: refuse taken ones
+        if self.port and not port_free(self.host, self.port):
+            raise StateworthError(f"{self.host}:{self.port} is in use; pick another --port", where="--port")
+        for i, wp in enumerate(self.worker_ports):
+            if wp and (wp == self.port or not port_free(self.host, wp)):
+                raise StateworthError(f"worker {i}'s port {wp} is in use or is --port; pick another --worker-ports "
+                                      f"base (worker i listens on BASE + i)", where="--worker-ports")
         hold = reserve_port(self.host, self.port)
         self.port = hold.getsockname()[1]
         try:
@@ -293,6 +357,8 @@ class Supervisor:
             end = time.monotonic() + self.start_timeout
             with self._changed:
                 while not all(w.ready.is_set() for w in self.workers):
+                    if stop is not None and stop.is_set():
+                        return self
                     dead = [w for w in self.workers if w.proc.poll() is not None and not w.ready.is_set()]
                     if dead or time.monotonic() > end:
                         self._stopping.set()
@@ -311,7 +377,12 @@ class Supervisor:
         return self
 
     def _terminate(self, grace: float) -> list[int | None]:
-        procs = [w.proc for w in self.workers if w is not None]
+        """SIGTERM the workers alive now, wait ``grace`` seconds, kill the rest; their exit codes
+        (None for a worker that had already exited: its exit was logged then)."""
+        with self._life:
+            self._stopping.set()
+            procs = [w.proc for w in self.workers if w is not None]
+        alive = [p.poll() is None for p in procs]
         for p in procs:
             if p.poll() is None:
                 p.send_signal(signal.SIGTERM)
@@ -322,7 +393,7 @@ class Supervisor:
             except subprocess.TimeoutExpired:
                 p.kill()
                 p.wait()
-        return [p.returncode for p in procs]
+        return [p.returncode if a else None for p, a in zip(procs, alive)]
 
     def stop(self) -> int:
         """SIGTERM every worker, wait for their drain; 0 when all stopped cleanly."""
@@ -333,7 +404,7 @@ class Supervisor:
         self._jobs.put(None)
         if self._httpd is not None:
             self._httpd.shutdown()
-        bad = [i for i, c in enumerate(codes) if c != 0]
+        bad = [i for i, c in enumerate(codes) if c not in (0, None)]
         log.info("stopped", extra={"fields": {"event": "stopped", "worker_exit_codes": codes}})
         logs.flush()
         return 1 if bad else 0
@@ -348,7 +419,7 @@ def run_supervised(argv: Callable[[int, int, int], list[str]], n: int, host: str
     stop = threading.Event()
     prev = {s: signal.signal(s, lambda *a: stop.set()) for s in (signal.SIGTERM, signal.SIGINT)}
     try:
-        sup.start()
+        sup.start(stop)
         while not stop.wait(0.5):
             pass
         return sup.stop()

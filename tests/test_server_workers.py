@@ -20,18 +20,18 @@ import pytest
 
 from serving import MODEL, ROOT, STATE, ServerProcess, write_artifact
 from stateworth.clients import client as cl
-from stateworth.server.supervisor import label_worker
+from stateworth.server.supervisor import merge_workers
 
 
-def test_metrics_lines_get_the_worker_label_and_comments_once():
+def test_merged_metrics_label_every_sample_and_keep_each_family_together():
     text = ("# HELP a_total A.\n# TYPE a_total counter\na_total{method=\"/x\",code=\"OK\"} 3\n"
-            "# TYPE g gauge\ng 1\n")
-    seen: set[str] = set()
-    first = label_worker(text, 0, seen)
-    second = label_worker(text, 1, seen)
-    assert first == ["# HELP a_total A.", "# TYPE a_total counter", 'a_total{worker="0",method="/x",code="OK"} 3',
-                     "# TYPE g gauge", 'g{worker="0"} 1']
-    assert second == ['a_total{worker="1",method="/x",code="OK"} 3', 'g{worker="1"} 1']
+            "# TYPE h histogram\nh_bucket{le=\"+Inf\"} 2\nh_sum 0.5\nh_count 2\n# TYPE g gauge\ng 1\n")
+    assert merge_workers([(0, text), (1, text)]) == [
+        "# HELP a_total A.", "# TYPE a_total counter",
+        'a_total{worker="0",method="/x",code="OK"} 3', 'a_total{worker="1",method="/x",code="OK"} 3',
+        "# TYPE h histogram", 'h_bucket{worker="0",le="+Inf"} 2', 'h_sum{worker="0"} 0.5', 'h_count{worker="0"} 2',
+        'h_bucket{worker="1",le="+Inf"} 2', 'h_sum{worker="1"} 0.5', 'h_count{worker="1"} 2',
+        "# TYPE g gauge", 'g{worker="0"} 1', 'g{worker="1"} 1']
 
 
 @pytest.fixture(scope="module")
@@ -114,6 +114,16 @@ def test_metrics_of_both_workers_come_back_labelled(workers):
     assert 'stateworth_requests_total{worker="' in text
 
 
+def test_ports_in_use_are_refused_in_one_line(workers, tmp_path):
+    srv, _d, _v1 = workers
+    for args, where in ((["--port", str(srv.port)], "--port"),
+                        (["--port", "0", "--worker-ports", str(_serving(srv)["worker_ports"][0])], "--worker-ports")):
+        r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--workers", "2", *args],
+                           capture_output=True, text=True, cwd=ROOT, timeout=120)
+        assert r.returncode == 1, r.stderr
+        assert where in r.stderr and "in use" in r.stderr and "Traceback" not in r.stderr
+
+
 def test_a_killed_worker_is_started_again_on_its_own_port(workers):
     srv, _d, _v1 = workers
     ports = _serving(srv)["worker_ports"]
@@ -135,6 +145,7 @@ def test_sigterm_stops_every_worker(tmp_path):
     write_artifact(tmp_path, "tiny", seed=0)
     srv = ServerProcess(tmp_path, "--workers", "2")
     pids = [ev["pid"] for ev in _ready(srv).values()]
+    assert len(pids) == 2
     assert srv.stop() == 0
     events = srv.wait_until(lambda evs: any(e.get("event") == "stopped" and "worker" not in e for e in evs))
     stopped = next(e for e in events if e.get("event") == "stopped" and "worker" not in e)
@@ -149,13 +160,12 @@ def test_a_worker_that_cannot_start_fails_the_command(tmp_path):
     bad = tmp_path / "broken"
     bad.mkdir()
     (bad / "manifest.json").write_text("{ not json")
-    t0 = time.monotonic()
     r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", "0", "--workers", "2"],
                        capture_output=True, text=True, cwd=ROOT, timeout=300,
                        env=dict(os.environ, JAX_PLATFORMS="cpu"))
     assert r.returncode == 1
     assert "before serving" in r.stderr and "broken" in r.stderr
-    assert time.monotonic() - t0 < 300
+    assert "Traceback" not in r.stderr
 
 
 @pytest.mark.parametrize("args, message", [(["--workers", "0"], "--workers must be at least 1"),
@@ -165,3 +175,41 @@ def test_bad_worker_options_are_refused_in_one_line(tmp_path, args, message):
                        capture_output=True, text=True, cwd=ROOT, timeout=120)
     assert r.returncode == 1
     assert message in r.stderr and "Traceback" not in r.stderr
+
+
+@pytest.mark.parametrize("mode, expect", [
+    ("ok", [{"worker": 0, "ok": True}, {"worker": 1, "ok": True}]),
+    ("fail", [{"worker": 0, "ok": True}, {"worker": 1, "ok": False, "error": "bad artifact"}]),
+    ("other", [{"worker": 0, "ok": True}, {"worker": 1, "ok": False, "error": "serves other versions"}]),
+    ("die", [{"worker": 0, "ok": True}, {"worker": 1, "ok": False, "error": "worker 1 exited"}]),
+])
+def test_a_relayed_load_reports_every_worker_and_restarts_the_ones_that_fell_behind(tmp_path, mode, expect):
+    # the supervisor's coordinator on stand-in workers (tests/fake_worker.py): worker 0 asks for a
+    # reload, worker 1 does it as MODE says; a worker that failed, left, or serves other versions
+    # than the asker is started again
+    import json
+    from pathlib import Path
+
+    from stateworth.server.supervisor import Supervisor
+
+    out = tmp_path / "answer.json"
+    fake = Path(__file__).with_name("fake_worker.py")
+
+    def argv(index: int, port: int, worker_port: int) -> list[str]:
+        return [sys.executable, str(fake), str(index), "ok" if index == 0 else mode, str(out)]
+
+    sup = Supervisor(argv, 2, "127.0.0.1", 0, start_timeout=60, coordinate_seconds=30).start()
+    try:
+        sup.workers[0].send({"go": True})  # both are ready: worker 0 asks now
+        for _ in range(300):
+            if out.exists() and (mode == "ok" or sup.restarts_total >= 1):
+                break
+            time.sleep(0.1)
+        results = json.loads(out.read_text())
+        assert [r["worker"] for r in results] == [0, 1]
+        for r, e in zip(results, expect):
+            assert r["ok"] is e["ok"]
+            assert e.get("error", "") in (r.get("error") or "")
+        assert sup.restarts_total == (0 if mode == "ok" else 1)
+    finally:
+        sup.stop()  # the stand-ins end on SIGTERM without a drain, so their codes say nothing here

@@ -19,6 +19,7 @@ a model, re-validating its tables, building a preconditioner, dispatching a solv
 from __future__ import annotations
 
 import collections
+import threading
 import time
 from dataclasses import dataclass
 from functools import partial
@@ -213,6 +214,7 @@ def draw_rewards(model, stacked: Mapping[str, np.ndarray], streams: Sequence[str
 
 _COMPILED: "collections.OrderedDict[tuple, Any]" = collections.OrderedDict()
 _COMPILED_MAX = 8
+_COMPILED_LOCK = threading.Lock()  # the server's solve pool calls from several threads
 
 
 def compiled(fn: Callable, args: tuple, static: Mapping[str, Any]) -> tuple[Callable, float]:
@@ -221,17 +223,20 @@ def compiled(fn: Callable, args: tuple, static: Mapping[str, Any]) -> tuple[Call
     compiling now: 0 on a cache hit). Lets a caller run many same-shaped chunks on one compile
     and report the compile time apart from the solve time."""
     leaves, tree = jax.tree_util.tree_flatten(args)
-    key = (fn, tree, tuple((np.shape(x), str(getattr(x, "dtype", type(x).__name__))) for x in leaves), tuple(sorted(static.items())))
-    exe = _COMPILED.get(key)
-    if exe is not None:
-        _COMPILED.move_to_end(key)
-        return exe, 0.0
+    key = (fn, tree, tuple((np.shape(x), str(getattr(x, "dtype", type(x).__name__)), getattr(x, "weak_type", None))
+                           for x in leaves), tuple(sorted(static.items())))
+    with _COMPILED_LOCK:
+        exe = _COMPILED.get(key)
+        if exe is not None:
+            _COMPILED.move_to_end(key)
+            return exe, 0.0
     t0 = time.perf_counter()
     exe = fn.lower(*args, **static).compile()
     seconds = time.perf_counter() - t0
-    _COMPILED[key] = exe
-    while len(_COMPILED) > _COMPILED_MAX:
-        _COMPILED.popitem(last=False)
+    with _COMPILED_LOCK:
+        _COMPILED[key] = exe
+        while len(_COMPILED) > _COMPILED_MAX:
+            _COMPILED.popitem(last=False)
     return exe, seconds
 
 
@@ -265,7 +270,9 @@ def solve_draws(model, stacked: Mapping[str, np.ndarray],
         if not np.isfinite(res) or res > max(1e3 * tol, 1e-8):
             raise ConvergenceError(f"dense draw solves left relative residual {res:.3g}", stats=stats)
         return np.asarray(x), stats
-    b = batch or _batch_size(n, k, restart, D)
+    if D == 0:
+        return np.empty((0, n, k)), {"method": "gmres", "draws": 0, "compile_seconds": 0.0, "solve_seconds": 0.0}
+    b = min(batch or _batch_size(n, k, restart, D), D)
     chunks = -(-D // max(DRAW_CHUNK, b))
     size = -(-(-(-D // chunks)) // b) * b  # D spread evenly over the chunks, in whole batches
     pc = point_preconditioner(model, transpose)
