@@ -24,6 +24,12 @@ SIZES = {
 DEFAULT = ["10k", "100k", "360k", "1.4M", "10M"]
 
 
+def _within(levels: int, step: int, name: str) -> dict[str, list[str]]:
+    """Move rules: each level to the levels at most ``step`` away."""
+    return {name.format(i): [name.format(j) for j in range(max(0, i - step), min(levels, i + step + 1))]
+            for i in range(levels)}
+
+
 def spec_dict(markets: int, tenure: int, bands: int) -> dict:
     return {
         "model": {"name": f"bench-{markets}x{tenure}x{bands}", "currency": "EUR",
@@ -40,8 +46,11 @@ def spec_dict(markets: int, tenure: int, bands: int) -> dict:
                                  "plus": ["lapsed", "basic", "plus", "max"],
                                  "max": ["lapsed", "plus", "max"]}},
             "engagement": {"kind": "chance", "levels": [f"e{i}" for i in range(5)],
-                           "given": ["next.status", "engagement"]},
-            "band": {"kind": "chance", "levels": [f"b{i:02d}" for i in range(bands)], "given": ["band"]},
+                           "given": ["next.status", "engagement"], "moves": _within(5, 2, "e{:d}")},
+            # the rule "a band moves at most two levels a month" makes the band an offsets step
+            # (rules/operator.py) instead of a dense contraction over all its levels
+            "band": {"kind": "chance", "levels": [f"b{i:02d}" for i in range(bands)], "given": ["band"],
+                     "moves": _within(bands, 2, "b{:02d}")},
         },
         "rewards": {"revenue": {"price": {"basic": 19.0, "plus": 29.0, "max": 49.0}, "fees_share": 0.2,
                                 "on_join": -10.0}},

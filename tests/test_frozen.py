@@ -69,6 +69,36 @@ def test_slice_and_one_hot_paths_agree(models):
     np.testing.assert_allclose(np.asarray(a), np.asarray(b), rtol=1e-12, atol=1e-12)
 
 
+def test_split_by_status_where_the_rules_keep_frozen_statuses_apart():
+    """With no move between the frozen statuses (never, former) allowed, the Galerkin blocks are
+    block-diagonal by status: the layout splits them, the per-status inverses are the diagonal
+    blocks of the whole block's inverse (numpy.linalg.inv, reference library), and the split
+    correction equals the unsplit one. Where a move between them is allowed there is no split."""
+    import dataclasses as dc
+
+    from stateworth.solver.frozen import frozen_coarse
+
+    assert frozen_layout(random_model(0, tenure=5)).split == 1  # former may move to never
+    m = random_model(0, tenure=5, moves={"former": ["former", "p1", "p2"]})
+    lay = frozen_layout(m)
+    assert lay.split == 2
+    fc = frozen_coarse(lay, m.tables, m.beta)
+    whole = frozen_coarse(dc.replace(lay, split=1), m.tables, m.beta)
+    S, k = 2, lay.block // 2
+    assert fc.inv.shape == (lay.blocks, S, k, k)
+    C = np.asarray(frozen_matrix(lay, m.tables)).reshape(lay.blocks, S, k, S, k)
+    assert np.all(C[:, 0, :, 1, :] == 0) and np.all(C[:, 1, :, 0, :] == 0)
+    ref = np.linalg.inv(np.eye(lay.block) - m.beta * np.asarray(frozen_matrix(lay, m.tables)))
+    for s in range(S):
+        np.testing.assert_allclose(np.asarray(fc.inv[:, s]), ref[:, s * k:(s + 1) * k, s * k:(s + 1) * k],
+                                   rtol=1e-10, atol=1e-12)
+    r = jnp.asarray(np.random.default_rng(3).standard_normal(m.n_states))
+    np.testing.assert_allclose(np.asarray(fc.solve(r)), np.asarray(whole.solve(r)), rtol=1e-10, atol=1e-12)
+    t = frozen_coarse(lay, m.tables, m.beta, transpose=True)
+    tw = frozen_coarse(dc.replace(lay, split=1), m.tables, m.beta, transpose=True)
+    np.testing.assert_allclose(np.asarray(t.solve(r)), np.asarray(tw.solve(r)), rtol=1e-10, atol=1e-12)
+
+
 def test_no_layout_without_a_standing_counter():
     spec = {
         "model": {"name": "nocounter", "discount": {"annual_rate": 0.1}},

@@ -15,8 +15,9 @@ from stateworth.solver import solve
 from stateworth.solver.preconditioner import choose_key, coarse_matrix, two_level
 
 
-def random_model(seed: int, markets: int = 2, tenure: int = 4, bands: int = 3):
-    """A small model with every axis kind and random tables that respect the move rules."""
+def random_model(seed: int, markets: int = 2, tenure: int = 4, bands: int = 3, moves: dict | None = None):
+    """A small model with every axis kind and random tables that respect the move rules
+    (``moves``: status move rules added to the default ones)."""
     rng = np.random.default_rng(seed)
     spec = parse_spec({
         "model": {"name": f"r{seed}", "discount": {"annual_rate": float(rng.uniform(0.05, 0.3)),
@@ -27,7 +28,7 @@ def random_model(seed: int, markets: int = 2, tenure: int = 4, bands: int = 3):
             "season": {"kind": "cycle", "size": 2},
             "status": {"kind": "status", "levels": ["never", "former", "p1", "p2"], "members": ["p1", "p2"],
                        "given": ["market", "tenure", "season", "status", "band"],
-                       "moves": {"never": ["never", "p1"], "p2": ["former", "p1", "p2"]},
+                       "moves": {"never": ["never", "p1"], "p2": ["former", "p1", "p2"], **(moves or {})},
                        "not_sold": {"p2": ["m0"]}},
             "band": {"kind": "chance", "levels": [f"b{i}" for i in range(bands)], "given": ["next.status", "band"]},
         },
