@@ -74,6 +74,6 @@ def restrict(model, block: Block, tables: Mapping[str, np.ndarray], rewards: Map
         nf = Factor(f.axis, f.given, shape + (f.shape[-1],))
         factors.append(nf)
         sub[f.axis] = slice_table(model, f, np.asarray(tables[f.axis]), block)
-    op = make_operator(model.spec, grid, factors, sub)
+    op = make_operator(model.spec, grid, factors, sub, reuse_plan=True)
     return dataclasses.replace(model, grid=grid, factors=factors, tables=sub, operator=op,
                                rewards={k: np.asarray(v)[block.states] for k, v in rewards.items()}, draws={})
