@@ -41,7 +41,7 @@ def peak_mb() -> float:
 
 def make_panel(rows: int) -> Path:
     from stateworth.rules import load_spec
-    from stateworth.rules.simulate import simulate_panel, write_simulation
+    from stateworth.estimation.simulate import simulate_panel, write_simulation
 
     path = OUT / f"fit_panel_{rows}.parquet"
     if path.is_file():
@@ -59,7 +59,7 @@ def make_panel(rows: int) -> Path:
 
 def child_fit(panel: str, markets: str) -> dict:
     from stateworth.rules import load_spec
-    from stateworth.rules.fit import FitOptions, fit_panel
+    from stateworth.estimation.fit import FitOptions, fit_panel
 
     spec = load_spec(SPEC)
     t0 = time.perf_counter()
@@ -71,8 +71,8 @@ def child_fit(panel: str, markets: str) -> dict:
 
 def child_counts(panel: str) -> dict:
     from stateworth.rules import load_spec
-    from stateworth.rules.counts import count_duckdb
-    from stateworth.rules.panel import load_panel
+    from stateworth.estimation.counts import count_duckdb
+    from stateworth.estimation.panel import load_panel
 
     spec = load_spec(SPEC)
     t0 = time.perf_counter()
@@ -89,8 +89,8 @@ def child_pandas(panel: str) -> dict:
     import pandas as pd
 
     from stateworth.rules import load_spec
-    from stateworth.rules.counts import counter_start, joint_from_columns
-    from stateworth.rules.panel import Layout
+    from stateworth.estimation.counts import counter_start, joint_from_columns
+    from stateworth.estimation.panel import Layout
 
     spec = load_spec(SPEC)
     lay = Layout.of(spec)
@@ -106,7 +106,7 @@ def child_pandas(panel: str) -> dict:
     df["pp"] = g["p"].shift()
     df["sp"] = g[st].shift()
     levels = spec.axis_levels(st)
-    member = np.array([lv in spec.members for lv in levels])
+    member = spec.member_flags()
     nm = levels.index(spec.non_members[0])
     sp = df["sp"].fillna(nm).to_numpy(np.int64)
     s = df[st].to_numpy(np.int64)

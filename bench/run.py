@@ -18,10 +18,8 @@ import math
 import os
 import subprocess
 import sys
-import time
 from pathlib import Path
 
-import numpy as np
 
 HERE = Path(__file__).resolve().parent
 OUT = HERE / "out"
@@ -45,9 +43,8 @@ def bandwidth_gbps() -> float:
 
 
 def _write(path: Path, doc) -> None:
-    tmp = path.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(doc, indent=2))
-    os.replace(tmp, path)
+    from stateworth.files import write_json
+    write_json(path, doc, indent=2)
 
 
 def run_one(size: str, solver: str, csr: str | None, timeout: float, devices: int | None = None) -> dict:

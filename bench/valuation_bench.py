@@ -39,6 +39,7 @@ sys.path.insert(0, str(HERE))
 
 from models import build  # noqa: E402
 
+from stateworth.files import write_json  # noqa: E402
 from stateworth.solver import solve  # noqa: E402
 from stateworth.valuation import TransitionChange, Valuer  # noqa: E402
 
@@ -79,10 +80,7 @@ def main() -> None:
     out = Path(a.out)
 
     def save() -> None:  # after every section, so a long run leaves what it measured
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = out.with_suffix(".json.tmp")
-        tmp.write_text(json.dumps(res, indent=1, default=float))
-        os.replace(tmp, out)
+        write_json(out, res, default=float)
 
     t0 = time.perf_counter()
     model = build(a.size)

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import sys
 from pathlib import Path
 
@@ -22,6 +21,7 @@ sys.path.insert(0, str(HERE.parent / "tests"))
 from test_valuation import PROSPECT, tiny_spec, tiny_tables  # noqa: E402
 from test_valuation_uncertainty import posterior  # noqa: E402
 
+from stateworth.files import write_json  # noqa: E402
 from stateworth.rules import compile_model  # noqa: E402
 from stateworth.valuation import Valuer  # noqa: E402
 
@@ -49,10 +49,7 @@ def main() -> None:
            "coverage": {str(lv): {"share": hits[lv] / a.repeats,
                                   "binomial_se": float(np.sqrt(lv * (1 - lv) / a.repeats))} for lv in levels}}
     out = Path(a.out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(res, indent=1))
-    os.replace(tmp, out)
+    write_json(out, res)
     print(json.dumps(res["coverage"]))
 
 

@@ -22,7 +22,7 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
@@ -169,7 +169,7 @@ class Server:
 def estimation_available() -> bool:
     """True when the estimation layer (simulate and fit) is installed."""
     return all(importlib.util.find_spec(m) is not None for m in
-               ("stateworth.rules.simulate", "stateworth.rules.fit"))
+               ("stateworth.estimation.simulate", "stateworth.estimation.fit"))
 
 
 def _columns(valuer, weights: np.ndarray) -> tuple[dict[str, list[str]], list[float]]:

@@ -8,7 +8,7 @@ Three panels are drawn from the spec's ground-truth tables (the scenario is inve
   applied (what the product team hopes the feature does). Each arm is fitted on its own panel,
   so the read-out compares two *estimated* models, with both arms' sampling uncertainty.
 
-Fitting uses the estimation layer (``stateworth.rules.fit``) with posterior draws, so every figure
+Fitting uses the estimation layer (``stateworth.estimation.fit``) with posterior draws, so every figure
 downstream carries a percentile interval.
 """
 
@@ -31,8 +31,8 @@ def fit_from_panels(spec_path: Path, truth, treated_truth, out: Path, accounts: 
     """Simulate and fit the business panel and the experiment's two arms (see the module doc).
     Returns (fitted model dir, control dir, treatment dir, a note on the source)."""
     from stateworth.rules import load_spec
-    from stateworth.rules.fit import FitOptions, fit_to_dir
-    from stateworth.rules.simulate import simulate_panel, write_simulation
+    from stateworth.estimation.fit import FitOptions, fit_to_dir
+    from stateworth.estimation.simulate import simulate_panel, write_simulation
 
     spec = load_spec(spec_path)
     n = int(accounts or ACCOUNTS)

@@ -27,15 +27,14 @@ import html
 import io
 import json
 import math
-import os
-import shutil
-import tempfile
 from pathlib import Path
 from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
+from stateworth.caution import CAUTION_LINE
 from stateworth.errors import ArtifactError, QueryError
+from stateworth.files import atomic_dir
 
 ASSUMPTIONS = [
     "Moves between states are unconfounded given the state: two customers in the same cell (plan, "
@@ -50,7 +49,7 @@ ASSUMPTIONS = [
     "cash timing; the infinite horizon is used unless a figure says otherwise.",
 ]
 CAUTIONS = [
-    "These are model-based estimates under the stated causal assumptions, not accounting figures.",
+    CAUTION_LINE,
     "The discount rate and the policy behind the transition tables (prices, offers, plan rules) are "
     "finance's call: change them and the figures change.",
     "Intervals (where shown) reflect sampling uncertainty of the fitted tables only, not doubts about "
@@ -525,7 +524,7 @@ def _fit_diagnostics_html(diag: Mapping[str, Any]) -> str | None:
     e = html.escape
     parts = []
     try:
-        from stateworth.rules.diagnostics import summary_text
+        from stateworth.estimation.diagnostics import summary_text
         parts.append(f"<pre>{e(summary_text(dict(diag)))}</pre>")
     except Exception:  # noqa: BLE001 - the summary is a convenience; the tables below carry the content
         pass
@@ -736,24 +735,11 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
     charts = {name: fn(data) for name, fn in CHARTS.items()}
     page = render_html(data, charts)
 
-    out_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.tmp-", dir=out_dir.parent))
-    try:
-        tmp.chmod(0o755)  # mkdtemp makes it private; a report is meant to be shared
+    with atomic_dir(out_dir) as tmp:
         (tmp / "charts").mkdir()
         for name, png in charts.items():
             if png is not None:
                 (tmp / "charts" / f"{name}.png").write_bytes(png)
         (tmp / "report.json").write_text(json.dumps(data, indent=2, default=float))
         (tmp / "report.html").write_text(page, encoding="utf-8")
-        if out_dir.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old-", dir=out_dir.parent))
-            os.rename(out_dir, old / "report")
-            os.rename(tmp, out_dir)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, out_dir)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     return out_dir / "report.html"

@@ -1,12 +1,26 @@
 """Rules: the spec, the state grid, factors and move rules, and compilation to an operator.
 
-Lowest layer of stateworth: knows nothing of solvers, valuation or gRPC.
+Lowest layer of stateworth: knows nothing of solvers, valuation or gRPC. The names below load
+on first use, so ``from stateworth.rules.spec import load_spec`` does not import JAX.
 """
 
-from stateworth.rules.artifact import load_model, read_manifest, save_model
-from stateworth.rules.compiled import CompiledModel, compile_model, estimate_bytes
-from stateworth.rules.grid import Grid
-from stateworth.rules.spec import Spec, load_spec, parse_spec
+from __future__ import annotations
 
-__all__ = ["CompiledModel", "Grid", "Spec", "compile_model", "estimate_bytes", "load_model",
-           "load_spec", "parse_spec", "read_manifest", "save_model"]
+import importlib
+from typing import Any
+
+_NAMES = {
+    "load_model": "artifact", "read_manifest": "artifact", "save_model": "artifact",
+    "CompiledModel": "compiled", "compile_model": "compiled", "estimate_bytes": "compiled",
+    "Grid": "grid",
+    "Spec": "spec", "load_spec": "spec", "parse_spec": "spec",
+}
+
+__all__ = sorted(_NAMES)
+
+
+def __getattr__(name: str) -> Any:
+    module = _NAMES.get(name)
+    if module is None:
+        raise AttributeError(f"module 'stateworth.rules' has no attribute '{name}'")
+    return getattr(importlib.import_module(f"stateworth.rules.{module}"), name)

@@ -32,11 +32,12 @@ def _sha(a: np.ndarray) -> str:
 
 
 def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarray] | None = None,
-               files: dict[str, Any] | None = None) -> Path:
+               files: dict[str, Any] | None = None, texts: dict[str, str] | None = None) -> Path:
     """Write ``model`` to directory ``path`` atomically (replacing an existing artifact).
 
-    ``extra`` arrays are stored beside the tables (e.g. cached solutions); ``files`` are extra
-    JSON documents (e.g. ``diagnostics.json``)."""
+    ``extra`` arrays are stored beside the tables (e.g. sensitivity tables); ``files`` are extra
+    JSON documents (e.g. ``diagnostics.json``), ``texts`` extra text files (``diagnostics.txt``):
+    all written before the directory appears."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     arrays: dict[str, np.ndarray] = {}
@@ -66,6 +67,8 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
             np.savez(fh, **arrays)
         for fname, doc in (files or {}).items():
             (tmp / fname).write_text(json.dumps(doc, indent=2, sort_keys=True, default=str))
+        for fname, text in (texts or {}).items():
+            (tmp / fname).write_text(text, encoding="utf-8")
         # not sort_keys: the order of the spec's axes is meaningful (grid order, draw order)
         (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2))
         if path.exists():

@@ -40,6 +40,8 @@ import jax.numpy as jnp
 import numpy as np
 import scipy.sparse as sp
 
+from stateworth import config
+from stateworth.rules.counters import counter_index
 from stateworth.rules.factors import Factor
 from stateworth.rules import pairwise
 from stateworth.rules.grid import Grid
@@ -81,49 +83,6 @@ class Plan:
         """The names ``dims`` of a table's axes (its own order) in the stored order."""
         perm = dict(self.layouts).get(key)
         return dims if perm is None else tuple(dims[p] for p in perm)
-
-
-def counter_flags(spec, axis: str) -> tuple[np.ndarray, np.ndarray]:
-    """``(reset[st, st'], adv[st'])`` of counter ``axis`` over status codes: the move
-    ``st -> st'`` resets it (events join: non-member -> member, lapse: member -> non-member,
-    change: any status change), and it advances while the *next* status is ``st'``
-    (``advance_while``; default always)."""
-    ax = spec.axes[axis]
-    st_levels = spec.axis_levels(spec.status_axis)
-    member = np.array([lv in spec.members for lv in st_levels])
-    aw = ax.advance_while if ax.advance_while is not None else "always"
-    if aw == "member":
-        adv = member
-    elif aw == "non_member":
-        adv = ~member
-    elif aw == "always":
-        adv = np.ones(len(st_levels), dtype=bool)
-    else:
-        adv = np.array([lv in aw for lv in st_levels])
-    S = len(st_levels)
-    reset = np.zeros((S, S), dtype=bool)
-    for ev in ax.reset_on or []:
-        if ev == "join":
-            reset |= (~member)[:, None] & member[None, :]
-        elif ev == "lapse":
-            reset |= member[:, None] & (~member)[None, :]
-        elif ev == "change":
-            reset |= ~np.eye(S, dtype=bool)
-    return reset, adv
-
-
-def counter_index(spec, axis: str) -> np.ndarray:
-    """``idx[c, st, st']``: the next level of counter ``axis`` from level ``c`` when the status
-    moves ``st -> st'``: 0 on a reset (:func:`counter_flags`); otherwise +1 (capped at the last
-    level) while the next status advances it, else unchanged."""
-    size = len(spec.axis_levels(axis))
-    reset, adv = counter_flags(spec, axis)
-    S = len(adv)
-    c = np.arange(size)[:, None, None]
-    nxt = np.where(adv[None, None, :], np.minimum(c + 1, size - 1), c)
-    nxt = np.broadcast_to(nxt, (size, S, S)).astype(np.int32)
-    nxt[:, reset] = 0
-    return nxt
 
 
 def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
@@ -450,6 +409,7 @@ def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.
                   reuse_plan: bool = False) -> GridOperator:
     """The operator of ``tables`` on ``grid``; ``reuse_plan``: take the plan from a small cache of
     recent ones (for operators built again and again on the same spec object and grid)."""
+    config.float64()
     if reuse_plan:
         plan, index = _plan_for(spec, grid, factors)
     else:

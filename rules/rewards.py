@@ -22,7 +22,7 @@ from stateworth.rules.grid import Grid
 def transition_amounts(spec, stream) -> np.ndarray:
     """``a[st, st']``: one-off amount when the status moves ``st -> st'`` (money)."""
     lv = spec.axis_levels(spec.status_axis)
-    member = np.array([x in spec.members for x in lv])
+    member = spec.member_flags()
     a = np.zeros((len(lv), len(lv)))
     if stream is None:
         return a
@@ -40,7 +40,7 @@ def period_cash(spec, grid: Grid, stream) -> np.ndarray:
     codes = dict(zip(grid.names, grid.codes()))
     st = spec.status_axis
     lv = spec.axis_levels(st)
-    member = np.isin(codes[st], [lv.index(m) for m in spec.members])
+    member = spec.member_flags()[codes[st]]
     c = np.zeros(grid.size)
     if stream is None:  # member_months
         c[member] = 1.0

@@ -14,11 +14,14 @@ from __future__ import annotations
 import math
 import tomllib
 from pathlib import Path
-from typing import Any, Literal
+from typing import TYPE_CHECKING, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from stateworth.errors import SpecError
+
+if TYPE_CHECKING:
+    import numpy as np
 
 AXIS_KINDS = ("status", "fixed", "counter", "cycle", "chance")
 RANDOM_KINDS = ("status", "chance")
@@ -152,6 +155,13 @@ class Spec(_Strict):
     @property
     def members(self) -> list[str]:
         return list(self.axes[self.status_axis].members or [])
+
+    def member_flags(self) -> "np.ndarray":
+        """Boolean ``(S,)`` over the status levels in order: True for a member level (a plan)."""
+        import numpy as np
+
+        m = set(self.members)
+        return np.array([lv in m for lv in self.axis_levels(self.status_axis)], dtype=bool)
 
     @property
     def non_members(self) -> list[str]:

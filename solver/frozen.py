@@ -36,6 +36,7 @@ from typing import Mapping
 import jax
 import jax.numpy as jnp
 import numpy as np
+from stateworth import config
 
 #: largest block (frozen statuses x kept chance levels); blocks number fixed cells x counter levels
 MAX_BLOCK = 64
@@ -79,7 +80,7 @@ class FrozenLayout:
 def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
     """The layout for ``model``, or None where there is nothing to freeze (no counter, no status
     that every counter stands still on, or no cluster smaller than the grid)."""
-    from stateworth.rules.operator import counter_flags, counter_index
+    from stateworth.rules.counters import counter_flags, counter_index
 
     spec, grid = model.spec, model.grid
     counters = [a.name for a in grid.axes if a.kind == "counter"]
@@ -166,6 +167,7 @@ def _onehot(layout: FrozenLayout, dtype) -> jax.Array:
 def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.Array:
     """``R2 P Q2`` restricted to moves that stay in the cluster: ``(blocks, K2, K2)`` (traceable:
     ``tables`` may be tracers, e.g. one posterior draw inside the batched draw solve)."""
+    config.float64()
     ops = [jnp.asarray(tables[a], dtype=jnp.float64) for a in layout.factor_axes]
     S = layout.grid_shape[layout.status_pos]
     ops += [jnp.asarray(np.array(m, dtype=np.float64).reshape(len(m), S, S)) for _, m in layout.masks]
@@ -242,6 +244,7 @@ class FrozenCoarse:
 def frozen_coarse(layout: FrozenLayout, tables: Mapping[str, jax.Array], beta, *, transpose: bool = False,
                   dtype=jnp.float64) -> FrozenCoarse:
     """The correction for ``I - beta P`` (or its transpose) with P's factor ``tables``."""
+    config.float64()
     from stateworth.solver.preconditioner import _coarse_inverse
 
     C = _frozen_matrix_jit(layout, dict(tables))

@@ -36,6 +36,7 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 import numpy as np
+from stateworth import config
 
 #: largest coarse block (key combinations per fixed cell); its inverse costs K^3 per cell. With
 #: deep smoothing a smaller coarse space loses little (3.6 x 10^5 states: K = 100 took 12
@@ -102,7 +103,8 @@ def coarse_matrix(model, key: dict[str, int], tables: dict | None = None) -> np.
 
     Counters in the key enter through a one-hot tensor ``H[c, st, st', bin(c')]`` of their
     deterministic move; their current value is averaged within its bin afterwards."""
-    from stateworth.rules.operator import counter_index
+    config.float64()
+    from stateworth.rules.counters import counter_index
 
     tables = model.tables if tables is None else tables
     grid = model.grid
@@ -247,6 +249,7 @@ def two_level(model, beta: float, *, transpose: bool = False, smooth: int = SMOO
     frozen-cluster correction (:mod:`.frozen`) where the model has frozen clusters; it costs one
     more apply per call and pays where cluster stay probabilities differ along the counters
     (posterior draws: 37 -> 17 iterations at 10^5 states)."""
+    config.float64()
     key = choose_key(model, max_block, counter_bins)
     C = coarse_matrix(model, key, tables)
     K = C.shape[1]

@@ -23,6 +23,7 @@ import numpy as np
 from jax.sharding import Mesh, NamedSharding, PartitionSpec
 
 from stateworth.errors import QueryError
+from stateworth import config
 
 
 @dataclass
@@ -68,6 +69,7 @@ def local_devices(count: int):
 
 def shard_model(model, count: int) -> ShardPlan:
     """Pad ``model`` along its first fixed axis to a multiple of ``count`` and build the mesh."""
+    config.float64()
     from stateworth.rules import compile_model, parse_spec
 
     devices = local_devices(count)

@@ -92,6 +92,7 @@ def solve(model, rewards=None, *, beta: float | None = None, method: str = "auto
     4 of every 5 applies) runs in ``"float32"`` or ``"float64"``; ``"auto"`` is float32. GMRES
     itself, its basis and the residual that decides convergence stay float64, so the answer's
     accuracy does not change; a float32 apply reads and writes half the bytes."""
+    config.float64()
     t0 = time.perf_counter()
     if method not in METHODS:
         raise QueryError(f"unknown method '{method}'; choose one of {', '.join(METHODS)}", field="method")

@@ -1,11 +1,11 @@
 """stateworth: value customer-state moves with discounted Markov chains.
 
-Importing any part of the package imports :mod:`stateworth.config` first, which switches JAX to
-float64. That is the only global setting in the project.
+Importing the package is light: it loads neither JAX nor the data engines, so the gRPC client,
+``stateworth --help`` and lookups of stored values start quickly. The numerical layers switch
+JAX to float64 where they make arrays (:func:`stateworth.config.float64`).
 """
 
-from stateworth import config as _config  # noqa: F401  (float64 before any array is made)
 from stateworth.errors import StateworthError
+from stateworth.version import __version__
 
-__version__ = "0.1.0"
 __all__ = ["StateworthError", "__version__"]

@@ -1,6 +1,7 @@
 """Process-wide configuration: the one place where global JAX settings are made.
 
-* float64 everywhere. Value functions of chains with beta close to 1 lose digits quickly in
+* float64 everywhere, switched by :func:`float64`, which every function that makes JAX arrays
+  calls first (importing stateworth switches nothing). Value functions of chains with beta close to 1 lose digits quickly in
   float32 (the condition number of I - beta P is about 1 / (1 - beta), 126 for 10 % a year
   monthly), so values, residuals and the Krylov basis are float64; only the preconditioner
   (an approximate inverse by design) runs in float32 (`solver/preconditioner.py`).
@@ -19,11 +20,17 @@ from __future__ import annotations
 
 import os
 
-import jax
-
-jax.config.update("jax_enable_x64", True)
-
 DEFAULT_MEMORY_LIMIT_GB = 12.0
+
+
+def float64() -> None:
+    """Switch JAX to 64-bit floats (idempotent; imports JAX). Called by the numerical entry points
+    (compiling a model, solving, fitting) before they make arrays; a caller using JAX directly
+    on stateworth's operators calls it too."""
+    import jax
+
+    if not jax.config.jax_enable_x64:
+        jax.config.update("jax_enable_x64", True)
 
 
 def memory_limit_bytes() -> int:

@@ -16,6 +16,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from stateworth import config
+
 
 @runtime_checkable
 class LinearOperator(Protocol):
@@ -40,6 +42,7 @@ class MatrixOperator:
     """
 
     def __init__(self, matrix: jax.Array) -> None:
+        config.float64()
         self.matrix = jnp.asarray(matrix, dtype=jnp.float64)
         self.shape = tuple(self.matrix.shape)  # type: ignore[assignment]
 
@@ -66,6 +69,7 @@ class SparseOperator:
     """
 
     def __init__(self, rows: jax.Array, cols: jax.Array, data: jax.Array, n: int) -> None:
+        config.float64()
         self.rows = jnp.asarray(rows, dtype=jnp.int32)
         self.cols = jnp.asarray(cols, dtype=jnp.int32)
         self.data = jnp.asarray(data, dtype=jnp.float64)

@@ -1,4 +1,4 @@
-"""Closed forms from shared/REFERENCES.md, solved through a spec (spec -> compile -> solve).
+"""Closed forms from docs/references.md, solved through a spec (spec -> compile -> solve).
 
 Each check names its source and how the reference value was obtained.
 """
@@ -28,7 +28,7 @@ def retention_spec(r: float, i: float, m: float, cash: str = "start") -> dict:
 
 # Gupta & Lehmann, "Managing Customers as Investments" (2005); also J. Interactive Marketing
 # 17(1), 2003: margin multiple r / (1 + i - r). The two-decimal values below are those listed in
-# shared/REFERENCES.md, "computed from the published formula (the printed table is recalled from
+# docs/references.md, "computed from the published formula (the printed table is recalled from
 # memory)".
 GUPTA_LEHMANN = [
     (0.10, 0.60, 1.20), (0.10, 0.70, 1.75), (0.10, 0.80, 2.67), (0.10, 0.90, 4.50),
@@ -49,7 +49,7 @@ def test_retention_margin_multiple(i, r, table_value):
     assert v[member] == pytest.approx(closed, rel=1e-10)
     assert v[member] / m - 1 == pytest.approx(r / (1 + i - r), rel=1e-10)
     assert abs(v[lost]) <= 1e-12 * m  # lost for good: worth nothing (up to rounding of the LU solve)
-    # the two-decimal table of REFERENCES.md (computed there from the same formula)
+    # the two-decimal table of docs/references.md (computed there from the same formula)
     assert abs(v[member] / m - 1 - table_value) <= 0.005 + 1e-12
 
 
@@ -63,7 +63,7 @@ def test_retention_margin_multiple_end_of_period_cash():
 
 
 def test_rate_conversion():
-    # shared/REFERENCES.md "rate conversion", standard finance (arithmetic): 10 % a year is
+    # docs/references.md "rate conversion", standard finance (arithmetic): 10 % a year is
     # 1.10^(1/12) - 1 = 0.0079741 a month, beta = 0.9920889 (both printed to 7 decimals there).
     spec = parse_spec(two_state_spec(0.1, 0.1, 1.0))
     assert spec.beta == pytest.approx(1.10 ** (-1 / 12), rel=1e-15)
@@ -98,7 +98,7 @@ def two_state_spec(p: float, c: float, m: float, markets: dict[str, float] | Non
 
 
 def two_state_closed_form(p: float, c: float, m: float, b: float) -> tuple[float, float]:
-    # shared/REFERENCES.md "member / non-member two-state chain", derived from the geometric
+    # docs/references.md "member / non-member two-state chain", derived from the geometric
     # series (join p, churn c, margin m, start-of-period cash); computed from that formula:
     # V_M = m (1 - b (1 - p)) / ((1 - b (1 - c)) (1 - b (1 - p)) - b^2 c p),
     # V_N = b p V_M / (1 - b (1 - p)).

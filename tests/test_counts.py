@@ -11,10 +11,10 @@ import pandas as pd
 import pytest
 
 from stateworth.rules import load_spec
-from stateworth.rules.counts import count_duckdb, counter_start, steady_between_resets
-from stateworth.rules.operator import counter_index
-from stateworth.rules.panel import load_panel
-from stateworth.rules.simulate import simulate_panel, write_simulation
+from stateworth.estimation.counts import count_duckdb, counter_start, steady_between_resets
+from stateworth.rules.counters import counter_index
+from stateworth.estimation.panel import load_panel
+from stateworth.estimation.simulate import simulate_panel, write_simulation
 
 SPEC = Path(__file__).parent / "data" / "mini_fitness.toml"
 TENURE = 'advance_while = "member"\nreset_on = ["join", "lapse"]\n'

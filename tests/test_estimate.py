@@ -10,9 +10,9 @@ import pytest
 
 from stateworth.errors import PanelError
 from stateworth.rules import load_spec
-from stateworth.rules.estimate import empirical_bayes_strength, parent_mean, posterior, wilson_interval
-from stateworth.rules.fit import FitOptions, fit_panel
-from stateworth.rules.simulate import simulate_panel, write_simulation
+from stateworth.estimation.estimate import empirical_bayes_strength, parent_mean, posterior, wilson_interval
+from stateworth.estimation.fit import FitOptions, fit_panel
+from stateworth.estimation.simulate import simulate_panel, write_simulation
 
 SPEC = Path(__file__).parent / "data" / "mini_fitness.toml"
 
@@ -58,7 +58,7 @@ def test_wilson_matches_statsmodels():
 
     k, n = np.array([0, 3, 17, 50]), np.array([10, 40, 60, 50])
     lo, hi = wilson_interval(k, n)
-    # Reference: Wilson (1927) via statsmodels proportion_confint(method="wilson") (REFERENCES.md),
+    # Reference: Wilson (1927) via statsmodels proportion_confint(method="wilson") (docs/references.md),
     # computed by the library.
     rlo, rhi = proportion_confint(k, n, alpha=0.10, method="wilson")
     np.testing.assert_allclose(lo, rlo, atol=1e-12)

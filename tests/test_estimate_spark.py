@@ -11,8 +11,8 @@ import pytest
 
 from stateworth.errors import PanelError
 from stateworth.rules import parse_spec
-from stateworth.rules.fit import FitOptions, fit_panel
-from stateworth.rules.simulate import simulate_panel, write_simulation
+from stateworth.estimation.fit import FitOptions, fit_panel
+from stateworth.estimation.simulate import simulate_panel, write_simulation
 
 from test_simulate import BAND_SPEC  # a spec with a counter-free grid and a propensity band
 

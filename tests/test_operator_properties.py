@@ -448,7 +448,7 @@ def test_offsets_step_gradient_matches_the_dense_contraction():
     from unittest import mock
 
     import stateworth.rules.operator as operator_module
-    from stateworth.rules.estimate import allowed_mask
+    from stateworth.estimation.estimate import allowed_mask
 
     spec = parse_spec(BANDED)
     tables = random_tables(spec, 6)

@@ -5,17 +5,16 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 import pytest
 
 from stateworth.errors import PanelError
 from stateworth.rules import load_spec
-from stateworth.rules.counts import count_duckdb, counter_start
-from stateworth.rules.fit import FitOptions, fit_panel, fit_to_dir
-from stateworth.rules.operator import counter_index
-from stateworth.rules.panel import check_panel, load_markets, load_panel
-from stateworth.rules.simulate import simulate_panel, write_simulation
+from stateworth.estimation.counts import count_duckdb, counter_start
+from stateworth.estimation.fit import FitOptions, fit_panel, fit_to_dir
+from stateworth.rules.counters import counter_index
+from stateworth.estimation.panel import check_panel, load_markets, load_panel
+from stateworth.estimation.simulate import simulate_panel, write_simulation
 
 SPEC = Path(__file__).parent / "data" / "mini_fitness.toml"
 

@@ -7,7 +7,7 @@ import pytest
 
 from stateworth.errors import SpecError
 from stateworth.rules import parse_spec
-from stateworth.rules.propensity import band_cuts, band_of, fit_logit, smd, smd_by_band
+from stateworth.estimation.propensity import band_cuts, band_of, fit_logit, smd, smd_by_band
 
 
 def test_logit_matches_statsmodels():
@@ -18,7 +18,7 @@ def test_logit_matches_statsmodels():
     eta = -1.0 + 0.03 * x[:, 0] - 0.2 * x[:, 1]
     y = (rng.random(3000) < 1 / (1 + np.exp(-eta))).astype(float)
     fit = fit_logit(x, y, ("age", "distance_km"))
-    # Reference: statsmodels.api.Logit (REFERENCES.md, "general-purpose reference libraries"),
+    # Reference: statsmodels.api.Logit (docs/references.md, "general-purpose reference libraries"),
     # computed here by the library on the same data.
     ref = sm.Logit(y, sm.add_constant(x)).fit(disp=0)
     np.testing.assert_allclose(fit.coef, ref.params, rtol=1e-8, atol=1e-10)
@@ -98,8 +98,8 @@ def test_categorical_covariate_fit_matches_statsmodels(tmp_path):
     import pandas as pd
     import statsmodels.api as sm
 
-    from stateworth.rules.fit import FitOptions, fit_panel
-    from stateworth.rules.simulate import CATEGORY_NAMES, simulate_panel, write_simulation
+    from stateworth.estimation.fit import FitOptions, fit_panel
+    from stateworth.estimation.simulate import CATEGORY_NAMES, simulate_panel, write_simulation
 
     spec = parse_spec(tomllib.loads(_cat_spec()))
     sim = simulate_panel(spec, 3000, 10, seed=2)
@@ -110,7 +110,7 @@ def test_categorical_covariate_fit_matches_statsmodels(tmp_path):
     assert prop["levels"] == {"channel": ref_levels}
     assert prop["terms"] == ["age"] + [f"channel={v}" for v in ref_levels[1:]]
     assert len(prop["smd_by_band"][0]) == len(prop["terms"])
-    # Reference: statsmodels.api.Logit (REFERENCES.md, general-purpose reference libraries) on the
+    # Reference: statsmodels.api.Logit (docs/references.md, general-purpose reference libraries) on the
     # same panel rows with indicator columns for channel against its first sorted value, computed
     # here by the library.
     df = sim.panel.to_pandas()
@@ -127,7 +127,7 @@ def test_categorical_covariate_fit_matches_statsmodels(tmp_path):
 def test_band_sql_equals_numpy_bands_with_categorical_terms():
     import duckdb
 
-    from stateworth.rules.propensity import Design, LogitFit, band_sql
+    from stateworth.estimation.propensity import Design, LogitFit, band_sql
 
     rng = np.random.default_rng(3)
     v = np.column_stack([rng.normal(size=500), rng.integers(0, 3, 500)])
@@ -150,8 +150,8 @@ def test_categorical_key_and_panel_errors(tmp_path):
     import pandas as pd
 
     from stateworth.errors import PanelError
-    from stateworth.rules.panel import MAX_CATEGORIES, load_panel
-    from stateworth.rules.simulate import simulate_panel, write_simulation
+    from stateworth.estimation.panel import MAX_CATEGORIES, load_panel
+    from stateworth.estimation.simulate import simulate_panel, write_simulation
 
     d = tomllib.loads(_cat_spec())
     bad = tomllib.loads(_cat_spec())

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from stateworth.rules import compile_model, parse_spec
-from stateworth.rules.operator import counter_index
+from stateworth.rules.counters import counter_index
 
 
 def _state(model, **coords):

@@ -12,7 +12,6 @@ from __future__ import annotations
 import threading
 import time
 
-import grpc
 import numpy as np
 import pytest
 

@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 
 from stateworth.rules import compile_model, parse_spec
-from stateworth.rules.fit import FitOptions, fit_panel
-from stateworth.rules.simulate import simulate_panel, write_simulation
+from stateworth.estimation.fit import FitOptions, fit_panel
+from stateworth.estimation.simulate import simulate_panel, write_simulation
 from stateworth.solver import solve
 
 # Invented: one plan; band "b0" members lapse often and rarely come back, band "b1" stay. The

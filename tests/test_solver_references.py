@@ -1,4 +1,4 @@
-"""Solver accuracy against outside references (shared/REFERENCES.md and reference libraries).
+"""Solver accuracy against outside references (docs/references.md and reference libraries).
 
 Each check names its source and how the expected value was obtained.
 """
@@ -112,7 +112,7 @@ def test_mcqueen_porteus_bracket_contains_exact_solution():
 
 
 def test_rate_conversion_beta():
-    # Standard finance arithmetic (REFERENCES.md): 10 % a year, monthly: beta = 1.10^(-1/12).
+    # Standard finance arithmetic (docs/references.md): 10 % a year, monthly: beta = 1.10^(-1/12).
     from stateworth.rules import parse_spec
     spec = parse_spec({"model": {"name": "x", "discount": {"annual_rate": 0.10}},
                        "axes": {"status": {"kind": "status", "levels": ["out", "in"], "members": ["in"],

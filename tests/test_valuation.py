@@ -92,7 +92,7 @@ PROSPECT = {"market": "harbor", "tenure": "0", "status": "prospect", "engagement
 
 
 def exact_values(model, stream: str = "revenue") -> np.ndarray:
-    """Reference: numpy.linalg.solve on the explicit matrix (REFERENCES.md, general-purpose
+    """Reference: numpy.linalg.solve on the explicit matrix (docs/references.md, general-purpose
     reference libraries; same values to about 1e-9 relative)."""
     P = model.csr().toarray()
     return np.linalg.solve(np.eye(model.n_states) - model.beta * P, model.rewards[stream])
@@ -193,7 +193,7 @@ def test_naive_beside_honest(tv):
     n = tv.naive_comparison(PROSPECT, "solo")
     assert n["member_value"] == pytest.approx(n["honest"] + n["non_member_value"])
     assert n["one_period"] == pytest.approx(29.0 * 0.8)
-    # the rule of thumb (REFERENCES.md, common practice, no source): the member value alone
+    # the rule of thumb (docs/references.md, common practice, no source): the member value alone
     # overstates the acquisition several times over when non-members join at a few % a month
     assert n["gap_ratio"] > 3
     json.dumps(n)
@@ -213,7 +213,7 @@ def two_state_spec(p: float, c: float, m: float, rate: float, period: str = "mon
 
 
 def test_two_state_chain_formula():
-    # REFERENCES.md, member / non-member two-state chain (derived from the geometric series,
+    # docs/references.md, member / non-member two-state chain (derived from the geometric series,
     # start-of-period cash); values computed from the published formula
     p, c, m = 0.02, 0.05, 20.0
     model = two_state_spec(p, c, m, 0.10)
@@ -229,7 +229,7 @@ def test_two_state_chain_formula():
 
 def test_margin_multiple():
     # Gupta & Lehmann (2005), margin multiple r / (1 + i - r): i = 10 %, r = 80 % -> 2.67
-    # (REFERENCES.md; value computed from the formula, printed table recalled from memory)
+    # (docs/references.md; value computed from the formula, printed table recalled from memory)
     model = two_state_spec(0.0, 0.2, 1.0, 0.10, period="year")
     v = Valuer.build(model)
     assert v.value({"status": "member"}).value - 1.0 == pytest.approx(0.8 / (1.1 - 0.8), rel=1e-10)
@@ -343,7 +343,7 @@ def test_stationary_matches_quantecon():
     model = tiny_model(markets=1, not_sold=False)
     v = Valuer.build(model)
     pi = v.stationary()
-    # quantecon MarkovChain.stationary_distributions on the explicit matrix (REFERENCES.md)
+    # quantecon MarkovChain.stationary_distributions on the explicit matrix (docs/references.md)
     ref = qe.MarkovChain(model.csr().toarray()).stationary_distributions
     assert ref.shape[0] == 1
     np.testing.assert_allclose(pi, ref[0], atol=1e-10)

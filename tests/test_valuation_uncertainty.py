@@ -1,6 +1,6 @@
 """Uncertainty: posterior draws solved in one batch, percentile intervals and their coverage.
 
-The coverage check follows the bootstrap / posterior percentile-interval reading of REFERENCES.md
+The coverage check follows the bootstrap / posterior percentile-interval reading of docs/references.md
 (Efron & Tibshirani 1993): a nominal 90 % interval should cover the true value in about 90 % of
 simulated data sets, within binomial error for the number of simulations. Data here are simulated
 transition counts per factor cell from a known ground-truth model; the posterior of every row is

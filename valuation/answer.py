@@ -18,9 +18,7 @@ from typing import Any
 
 import numpy as np
 
-#: the caution every serialised answer carries
-CAUTION = ("model-based estimate under the model's causal assumptions (moves unconfounded given the state); "
-           "not an accounting figure; the discount rate and policy are finance's call")
+from stateworth.caution import CAUTION  # noqa: F401  (re-exported: every answer carries it)
 
 
 def percentile_interval(samples: np.ndarray, level: float, axis: int = 0) -> tuple[np.ndarray, np.ndarray]:

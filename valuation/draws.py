@@ -35,6 +35,7 @@ from stateworth.solver.frozen import frozen_coarse
 from stateworth.solver.gmres import gmres
 from stateworth.solver.horizon import horizon_values
 from stateworth.solver.preconditioner import low_precision, two_level
+from stateworth import config
 
 #: grids up to this many states solve each draw densely
 DENSE_MAX = 800
@@ -94,6 +95,7 @@ def _reward_jit(op, base, cols, masks, scale):
 
 def rewards_on(op, parts: Sequence[RewardParts]) -> jax.Array:
     """``(n, k)`` rewards of the streams ``parts`` under operator ``op``."""
+    config.float64()
     return jnp.stack([_reward_jit(op, jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale)
                       for p in parts], axis=1)
 
@@ -124,6 +126,7 @@ def point_preconditioner(model, transpose: bool = False):
 
     Built once and shared by every draw: a draw's operator differs from the point model's by
     sampling noise, so the point model's coarse inverse still captures its slow modes."""
+    config.float64()
     if model.grid.size <= DENSE_MAX:
         return None
     return two_level(model, model.beta, transpose=transpose, dtype=jnp.float32, frozen=True, smooth=DRAW_SMOOTH)
@@ -203,12 +206,14 @@ def _rhs_draws(op, stacked, parts_arrays):
 
 def rewards_for_draws(op, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts]) -> jax.Array:
     """Rewards ``(D, n, k)`` of the streams ``parts`` under each draw's operator."""
+    config.float64()
     arrays = tuple((jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale) for p in parts)
     return _rhs_draws(op, {k: jnp.asarray(v) for k, v in stacked.items()}, arrays)
 
 
 def draw_rewards(model, stacked: Mapping[str, np.ndarray], streams: Sequence[str]) -> jax.Array:
     """Rewards ``(D, n, k)`` of the model's ``streams`` under each draw."""
+    config.float64()
     return rewards_for_draws(model.operator, stacked, [reward_parts(model, s) for s in streams])
 
 
@@ -253,6 +258,7 @@ def solve_draws(model, stacked: Mapping[str, np.ndarray],
     one compiled computation in chunks of :data:`DRAW_CHUNK` (stats: ``compile_seconds``, the
     one-off compile, and ``solve_seconds``). Returns ``(X (D, n, k), stats)``; raises
     ConvergenceError if any draw failed."""
+    config.float64()
     D = int(next(iter(stacked.values())).shape[0]) if stacked else 0
     rhs_of = rhs if callable(rhs) else None
     if rhs_of is None:
@@ -315,5 +321,6 @@ def _horizon_draws(op, stacked, rhs, beta, horizon):
 
 def horizon_draws(model, stacked: Mapping[str, np.ndarray], rhs, horizon: int) -> np.ndarray:
     """H-period values of every draw: ``(D, n, k)``."""
+    config.float64()
     tabs = {a: jnp.asarray(v) for a, v in stacked.items()}
     return np.asarray(_horizon_draws(model.operator, tabs, jnp.asarray(rhs), jnp.float64(model.beta), int(horizon)))

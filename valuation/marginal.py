@@ -25,6 +25,7 @@ import numpy as np
 from stateworth.valuation.answer import MarginalEntry
 from stateworth.valuation.change import _allowed
 from stateworth.valuation.draws import RewardParts
+from stateworth import config
 
 
 @jax.jit
@@ -41,6 +42,7 @@ def _table_gradients(op, tables, lam, v, beta, base, cols, masks, scale):
 
 def table_gradients(model, lam: np.ndarray, v: np.ndarray, parts: RewardParts) -> dict[str, np.ndarray]:
     """dJ/dT for every factor table (raw partials, same shapes as the tables)."""
+    config.float64()
     tabs = {a: jnp.asarray(t) for a, t in model.tables.items()}
     g = _table_gradients(model.operator, tabs, jnp.asarray(lam), jnp.asarray(v), jnp.float64(model.beta),
                          jnp.asarray(parts.base), jnp.asarray(parts.cols), jnp.asarray(parts.masks), parts.scale)

@@ -79,8 +79,8 @@ def index_many(grid, columns: Mapping[str, Sequence[Any]]) -> np.ndarray:
 
 
 def member_flags(spec) -> np.ndarray:
-    lv = spec.axis_levels(spec.status_axis)
-    return np.array([x in spec.members for x in lv])
+    """Boolean over the status levels: True for a plan (see ``Spec.member_flags``)."""
+    return spec.member_flags()
 
 
 def former_member_levels(spec) -> list[str]:

@@ -25,6 +25,7 @@ import numpy as np
 
 from stateworth.errors import QueryError
 from stateworth.solver.gmres import gmres
+from stateworth import config
 
 DENSE_MAX = 2500
 
@@ -47,6 +48,7 @@ def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol:
 
     ``block_weights`` ``(F,)``: the grid is F equal consecutive blocks (the fixed cells, which
     lead the grid order) with these population shares (normalised); default one block."""
+    config.float64()
     n = int(op.shape[0])
     w = np.ones(1) if block_weights is None else np.asarray(block_weights, dtype=np.float64)
     F = len(w)

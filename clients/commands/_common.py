@@ -16,8 +16,7 @@ from typing import Any, Mapping, Sequence
 
 from stateworth.errors import QueryError
 
-CAUTION_LINE = ("Model-based estimates under the model's causal assumptions (moves unconfounded given the "
-                "state); not accounting figures; the discount rate and policy are finance's call.")
+from stateworth.caution import CAUTION_LINE  # noqa: F401  (re-exported for the commands)
 
 
 def parse_pairs(pairs: Sequence[str], what: str = "state") -> dict[str, str]:

@@ -52,7 +52,7 @@ def run(args: argparse.Namespace) -> int:
             problems.append(str(e))
         if args.panel:
             try:
-                from stateworth.rules.panel import check_panel  # estimation layer
+                from stateworth.estimation.panel import check_panel  # estimation layer
                 problems.extend(check_panel(spec, args.panel, args.markets))
             except StateworthError as e:
                 problems.append(str(e))

@@ -42,8 +42,8 @@ def run(args: argparse.Namespace) -> int:
 
     from stateworth.errors import PanelError
     from stateworth.rules import load_spec
-    from stateworth.rules.diagnostics import summary_text
-    from stateworth.rules.fit import FitOptions, fit_to_dir
+    from stateworth.estimation.diagnostics import summary_text
+    from stateworth.estimation.fit import FitOptions, fit_to_dir
 
     if args.strength == "auto":
         strength = "auto"

@@ -138,8 +138,6 @@ def starter_spec(plans: list[str], markets: list[str], prices: list[float] | Non
 
 
 def run(args: argparse.Namespace) -> int:
-    import os
-    import tempfile
     from pathlib import Path
 
     from stateworth.errors import SpecError
@@ -170,15 +168,8 @@ def run(args: argparse.Namespace) -> int:
 
     from stateworth.rules import parse_spec
     parse_spec(tomllib.loads(text), source=str(out))
-    out.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", dir=out.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, out)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    from stateworth.files import write_text
+    write_text(out, text)
     print(f"wrote {out}: {len(plans)} plan(s), {len(markets)} market(s), {len(bands)} engagement band(s)")
     print(f"next: edit the moves and rewards, then `stateworth check {out}` and "
           f"`stateworth fit {out} --panel PANEL --markets SIZES`")

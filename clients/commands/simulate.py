@@ -33,7 +33,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     from stateworth.errors import SpecError
     from stateworth.rules import load_spec
-    from stateworth.rules.simulate import simulate_panel, write_simulation
+    from stateworth.estimation.simulate import simulate_panel, write_simulation
 
     if args.accounts < 1:
         raise SpecError(f"--accounts {args.accounts}: give a positive number of people", where="--accounts")

@@ -75,5 +75,6 @@ def run(args: argparse.Namespace) -> int:
         print(f"  {s:<14} " + " ".join(f"{table[s][lv]:>{max(w, 10)},.2f}" for lv in levels) + f"  {model.unit(s)}")
     if args.save:
         print(f"saved compiled model to {args.save}")
-    print("Model-based estimates under the spec's assumptions; not accounting figures.")
+    from stateworth.caution import CAUTION_LINE
+    print(CAUTION_LINE)
     return 0

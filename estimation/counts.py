@@ -21,8 +21,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from stateworth.rules.factors import Factor
-from stateworth.rules.operator import counter_flags
-from stateworth.rules.panel import Layout
+from stateworth.rules.counters import counter_flags
+from stateworth.estimation.panel import Layout
 
 W = "PARTITION BY account ORDER BY p"
 RUNNING = "ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW"
@@ -56,8 +56,9 @@ def counter_sql(spec, lay: Layout, axis: str, s: str, sp: str) -> tuple[str, str
     iterating :func:`stateworth.rules.operator.counter_index` row by row."""
     ax = spec.axes[axis]
     st = spec.axis_levels(spec.status_axis)
-    mem = [i for i, lv in enumerate(st) if lv in spec.members]
-    non = [i for i, lv in enumerate(st) if lv not in spec.members]
+    flags = spec.member_flags()
+    mem = [int(i) for i in np.flatnonzero(flags)]
+    non = [int(i) for i in np.flatnonzero(~flags)]
     prev = f"COALESCE({sp}, {lay.code(spec.status_axis, spec.non_members[0])})"
     parts = []
     for ev in ax.reset_on or []:
@@ -122,7 +123,7 @@ def transitions_sql(spec, source: str, extra: tuple[str, ...] = (), general: boo
     every counter is :func:`steady_between_resets`, else two (running sums of reset and advance
     flags, then the running sum at the last reset). ``general=True`` forces the two-pass form
     (the tests check that both agree). ``sequenced=True``: ``source`` already carries the
-    neighbour columns of :func:`stateworth.rules.panel.sequence_sql` (``_np``, ``_sp``,
+    neighbour columns of :func:`stateworth.estimation.panel.sequence_sql` (``_np``, ``_sp``,
     ``_n<i>`` for every random axis), so the LEAD / LAG pass is read, not recomputed.
     ``pack=True`` (with :func:`packed_codes` non-empty): the observed ``q<i>`` and all ``n<i>``
     come out packed in one column ``k`` instead."""

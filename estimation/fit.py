@@ -18,22 +18,22 @@ Conventions for cells the panel cannot show:
 from __future__ import annotations
 
 import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
 
 import numpy as np
 
+from stateworth.caution import CAUTION_LINE
 from stateworth.errors import PanelError
 from stateworth.rules.compiled import CompiledModel, compile_model
-from stateworth.rules.counts import (JointCounts, count_duckdb, factor_counts, first_rows_sql, transitions_sql)
-from stateworth.rules.diagnostics import overlap_report, prior_report, summary_text
-from stateworth.rules.estimate import FactorFit, allowed_mask, posterior
+from stateworth.estimation.counts import (JointCounts, count_duckdb, factor_counts, first_rows_sql, transitions_sql)
+from stateworth.estimation.diagnostics import overlap_report, prior_report, summary_text
+from stateworth.estimation.estimate import FactorFit, allowed_mask, posterior
 from stateworth.rules.factors import Factor, factors_of, move_mask
-from stateworth.rules.joins import first_row_table, hazard_summary, join_counts, prospect_rows
-from stateworth.rules.panel import CODED, Panel, load_markets, load_panel, period_label
-from stateworth.rules.propensity import SMD_BALANCED, Design, band_cuts, band_of, band_sql, fit_logit, smd_by_band
+from stateworth.estimation.joins import first_row_table, hazard_summary, join_counts, prospect_rows
+from stateworth.estimation.panel import CODED, Panel, load_markets, load_panel, period_label
+from stateworth.estimation.propensity import SMD_BALANCED, Design, band_cuts, band_of, band_sql, fit_logit, smd_by_band
 from stateworth.rules.spec import Spec
 
 #: Rows used for the logistic fit at most (every k-th panel row beyond that).
@@ -83,7 +83,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
         raise PanelError(f"forbidden = '{options.forbidden}'; use error or drop", where="forbidden")
     if options.strength != "auto" and not (isinstance(options.strength, (int, float)) and options.strength > 0):
         raise PanelError(f"prior strength {options.strength!r}: give a number > 0 or auto", where="--strength")
-    from stateworth.rules.panel import connect
+    from stateworth.estimation.panel import connect
 
     bar = _progress(progress, 6)
     con = connect(options.threads)
@@ -107,7 +107,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
     bar.update()
     bar.set_description("fit: count moves")
     if options.engine == "spark":
-        from stateworth.rules.spark import count_spark
+        from stateworth.estimation.spark import count_spark
 
         joint, first_rows = count_spark(spec, panel, band_expr, lay.col(lay.band) if lay.band else None)
     else:
@@ -161,7 +161,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
         "joins": jdiag,
         "propensity": diag_prop,
         "revenue": _revenue(spec, panel) if panel.has_revenue else None,
-        "caution": "Model-based estimates under stated causal assumptions; not accounting figures.",
+        "caution": CAUTION_LINE,
     }
     return FitResult(model=model, diagnostics=diag, fits=fits, joint=joint, extra=extra)
 
@@ -173,12 +173,9 @@ def fit_to_dir(spec: Spec, panel_path, markets_path, out_dir, options: FitOption
     from stateworth.rules.artifact import save_model
 
     res = fit_panel(spec, panel_path, markets_path, options, source=source, progress=progress)
-    save_model(res.model, out_dir, extra=res.extra, files={"diagnostics.json": res.diagnostics})
-    out = Path(out_dir)
-    fd, tmp = tempfile.mkstemp(prefix=".diagnostics.txt.tmp-", dir=out)
-    with os.fdopen(fd, "w") as fh:
-        fh.write(summary_text(res.diagnostics) + "\n")
-    os.replace(tmp, out / "diagnostics.txt")
+    # the readable summary goes in with the rest: a model directory appears whole or not at all
+    save_model(res.model, out_dir, extra=res.extra, files={"diagnostics.json": res.diagnostics},
+               texts={"diagnostics.txt": summary_text(res.diagnostics) + "\n"})
     return res
 
 

@@ -2,8 +2,8 @@
 
 The validated, coded panel (DuckDB table ``coded``) is written to Parquet in ``workdir`` and read
 by Spark as the temporary view ``coded``; the propensity band (if any) is added by the same SQL
-CASE expression; then :func:`stateworth.rules.counts.count_sql` and
-:func:`~stateworth.rules.counts.first_rows_sql` run unchanged through ``spark.sql``. Results are
+CASE expression; then :func:`stateworth.estimation.counts.count_sql` and
+:func:`~stateworth.estimation.counts.first_rows_sql` run unchanged through ``spark.sql``. Results are
 put in the canonical row order, so they compare row for row with DuckDB's.
 
 The session is ``SparkSession.builder.getOrCreate()`` with ``spark.master`` taken from the
@@ -17,8 +17,8 @@ import os
 import tempfile
 
 from stateworth.errors import PanelError
-from stateworth.rules.counts import JointCounts, count_sql, first_rows_sql, joint_from_columns
-from stateworth.rules.panel import CODED, Panel
+from stateworth.estimation.counts import JointCounts, count_sql, first_rows_sql, joint_from_columns
+from stateworth.estimation.panel import CODED, Panel
 
 
 def spark_session():

@@ -3,7 +3,7 @@
 ``population`` addressable people are spread evenly at random over the levels of each fixed
 axis. Everyone starts, one period before the panel's first period, as a never-member (the first
 non-member level), at the lowest level of each chance axis, with counters at their never-member
-start (:func:`stateworth.rules.counts.counter_start`); a propensity band axis instead starts at a
+start (:func:`stateworth.estimation.counts.counter_start`); a propensity band axis instead starts at a
 uniformly drawn band. Each period every person moves by the true factors in draw order, counters
 by their index map and cycles by one. A person enters the panel in the period they first join
 and stays in it (as a former member after lapsing); never-members never appear.
@@ -22,18 +22,17 @@ never below the accounts the panel tracks there).
 
 from __future__ import annotations
 
-import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from stateworth.errors import SpecError
-from stateworth.rules.counts import counter_start
+from stateworth.files import write_with
+from stateworth.estimation.counts import counter_start
 from stateworth.rules.factors import factors_of, table_from_rows
-from stateworth.rules.operator import counter_index
-from stateworth.rules.panel import Layout, parse_period, period_label
+from stateworth.rules.counters import counter_index
+from stateworth.estimation.panel import Layout, parse_period, period_label
 
 COVARIATE_NOISE = 0.15
 #: Classes of a simulated categorical covariate and the cuts of the underlying measurement.
@@ -182,19 +181,7 @@ def markets_path_for(panel_path: str | Path) -> Path:
 
 
 def _atomic(path: Path, write) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.tmp-", dir=path.parent)
-    os.close(fd)
-    try:
-        write(tmp)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp makes 0600; give the file the usual permissions
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    write_with(path, lambda tmp: write(str(tmp)))
 
 
 def write_table(table, path: str | Path) -> Path:

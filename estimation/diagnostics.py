@@ -11,7 +11,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from stateworth.rules.estimate import FactorFit
+from stateworth.caution import CAUTION_LINE
+from stateworth.estimation.estimate import FactorFit
 from stateworth.rules.factors import Factor
 
 MAX_LISTED = 20
@@ -29,7 +30,7 @@ def overlap_report(spec, factor: Factor, fit: FactorFit, skip: np.ndarray | None
     """Status-factor cells with observed moves but none into a member or none into a non-member
     next status. ``skip`` (bool over the given cells) leaves out cells not fitted from moves."""
     st = spec.axis_levels(factor.axis)
-    mem = np.array([lv in spec.members for lv in st])
+    mem = spec.member_flags()
     c = fit.counts
     n = c.sum(axis=-1)
     total = n.sum()
@@ -93,6 +94,5 @@ def summary_text(diag: dict) -> str:
             vals = ", ".join(f"{c} {v:+.3f}" if v is not None else f"{c} n/a" for c, v in zip(pr.get("terms", pr["covariates"]), row))
             L.append(f"  band {pr['bands'][b]}: standardised mean difference {vals}")
         L.append(f"  covariates with |SMD| >= {pr['smd_rule']} within some band: {', '.join(pr['unbalanced']) or 'none'}")
-    L.append("Estimates rest on the stated causal assumptions (no unmeasured confounding given the state); "
-             "they are not accounting figures.")
+    L.append(CAUTION_LINE)
     return "\n".join(L)

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from stateworth.errors import PanelError
-from stateworth.rules.panel import MarketSizes, Panel
+from stateworth.estimation.panel import Panel
 
 
 @dataclass(frozen=True)
@@ -60,7 +60,7 @@ def join_counts(panel: Panel, first: np.ndarray, sizes: np.ndarray, which: str =
     tracked = np.cumsum(first.sum(axis=2), axis=1)  # accounts seen by the end of period t
     joins_k = first[:, 1:, :]  # first rows after the first panel period are joins
     at_risk = sizes[:, :-1] - tracked[:, :-1]
-    nonmem = [i for i, lv in enumerate(st) if lv not in spec.members]
+    nonmem = [int(i) for i in np.flatnonzero(~spec.member_flags())]
     if joins_k[:, :, nonmem].sum() > 0:
         m, t = np.argwhere(joins_k[:, :, nonmem].sum(axis=2) > 0)[0]
         raise PanelError(f"accounts whose first row (period index {t + 1} of the panel, market "

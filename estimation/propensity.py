@@ -9,7 +9,7 @@ enters the grid as a chance axis with its own estimated kernel.
 
 Balance: the standardised mean difference of each covariate between member and non-member
 rows within a band, ``(mean_1 - mean_0) / sqrt((var_1 + var_0) / 2)``; below 0.1 is commonly
-read as balanced (Austin 2011, see REFERENCES.md).
+read as balanced (Austin 2011, see docs/references.md).
 """
 
 from __future__ import annotations
@@ -21,6 +21,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from stateworth.errors import PanelError
+from stateworth import config
 
 #: The 0.1 rule of thumb for a balanced covariate (common practice; Austin 2011).
 SMD_BALANCED = 0.1
@@ -69,6 +70,7 @@ def _newton(X, y, max_iter, tol):
 def fit_logit(x: np.ndarray, y: np.ndarray, names: tuple[str, ...] = (), *, max_iter: int = 50,
               tol: float = 1e-10, where: str = "propensity") -> LogitFit:
     """Logistic regression of ``y`` (0/1, shape (n,)) on ``x`` (n, k) with an intercept."""
+    config.float64()
     x = np.asarray(x, dtype=np.float64)
     y = np.asarray(y, dtype=np.float64)
     if x.ndim != 2 or len(x) != len(y):
