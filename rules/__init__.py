@@ -10,7 +10,8 @@ import importlib
 from typing import Any
 
 _NAMES = {
-    "load_model": "artifact", "read_manifest": "artifact", "save_model": "artifact",
+    "load_model": "artifact", "read_manifest": "artifact", "save_model": "artifact", "model_files": "artifact",
+    "clean_leftovers": "artifact",
     "CompiledModel": "compiled", "compile_model": "compiled", "estimate_bytes": "compiled",
     "Grid": "grid",
     "Spec": "spec", "load_spec": "spec", "parse_spec": "spec",

@@ -6,7 +6,12 @@ see :mod:`.supervisor`) loads first and listens after, on a port it shares with 
 workers, and relays admin loads through its supervisor (:mod:`.peers`). Health stays NOT_SERVING while no model is loaded (an empty model
 directory is allowed: load one later with the admin LoadModel call). SIGTERM or SIGINT: health
 turns NOT_SERVING, new calls are refused, calls in flight get ``drain_seconds`` to finish, then
-the process exits with status 0.
+the process exits with status 0. The stop is bounded whatever the calls do: past the drain time
+plus :data:`STOP_SLACK_SECONDS` the server stops without them (``stop_forced`` in the log), and
+``stateworth serve`` ends the process even if a solve is still running in a thread.
+
+Admin calls (loads) are off unless an admin token is configured, or ``admin_open`` is set
+(``--admin-open``: local development, loopback only).
 """
 
 from __future__ import annotations
@@ -14,7 +19,9 @@ from __future__ import annotations
 import logging
 import os
 import signal
+import sys
 import threading
+import time
 from concurrent import futures
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -36,6 +43,8 @@ from stateworth.v1 import admin_service_pb2, admin_service_pb2_grpc, valuation_s
 log = logging.getLogger("stateworth.server")
 
 LOOPBACK = ("127.0.0.1", "::1", "localhost")
+#: seconds the stop waits for the gRPC server past the drain time before it gives up on calls
+STOP_SLACK_SECONDS = 5.0
 SERVICE_NAMES = (valuation_service_pb2.DESCRIPTOR.services_by_name["ValuationService"].full_name,
                  admin_service_pb2.DESCRIPTOR.services_by_name["ModelAdminService"].full_name)
 
@@ -58,6 +67,8 @@ class ServerConfig:
     tls_key: str | None = None
     token: str | None = None
     admin_token: str | None = None
+    #: admin calls without a token (local development; loopback hosts only)
+    admin_open: bool = False
     threads: int = 16
     max_concurrent: int = 256
     max_message_bytes: int = 64 * 1024 * 1024
@@ -113,8 +124,16 @@ class Server:
                 ("grpc.max_send_message_length", config.max_message_bytes),
                 # workers share their port (the kernel spreads connections); one process does not
                 ("grpc.so_reuseport", 1 if self.peers is not None else 0)]
-        self.grpc = grpc.server(futures.ThreadPoolExecutor(max_workers=config.threads, thread_name_prefix="stateworth-rpc"),
-                                interceptors=[CallInterceptor(self.metrics, config.token, config.admin_token)],
+        if config.admin_open and config.admin_token:
+            raise ConfigError("--admin-open and --admin-token-file contradict each other; give one",
+                              where="--admin-open")
+        if config.admin_open and config.host not in LOOPBACK:
+            raise ConfigError(f"--admin-open is for local development on loopback; on {config.host} give "
+                              "--admin-token-file instead", where="--admin-open")
+        self._executor = futures.ThreadPoolExecutor(max_workers=config.threads, thread_name_prefix="stateworth-rpc")
+        self.grpc = grpc.server(self._executor,
+                                interceptors=[CallInterceptor(self.metrics, config.token, config.admin_token,
+                                                              config.admin_open)],
                                 options=opts, maximum_concurrent_rpcs=config.max_concurrent)
         valuation_service_pb2_grpc.add_ValuationServiceServicer_to_server(
             ValuationServicer(self.store, self.pool, Limits(max_batch=config.max_batch)), self.grpc)
@@ -152,15 +171,23 @@ class Server:
                 key, cert = Path(c.tls_key).read_bytes(), Path(c.tls_cert).read_bytes()
             except OSError as e:
                 raise ConfigError(f"cannot read the TLS file ({e.strerror})", where=e.filename) from None
-            bound = self.grpc.add_secure_port(address, grpc.ssl_server_credentials([(key, cert)]))
+            if c.host not in LOOPBACK and port == c.port and c.token is None:
+                log.warning("TLS beyond loopback without a query token: anyone who can reach the port may query; "
+                            "give --token-file", extra={"fields": {"event": "tls_without_tokens", "host": c.host,
+                                                                   "admin_token": c.admin_token is not None}})
+            add = lambda: self.grpc.add_secure_port(address, grpc.ssl_server_credentials([(key, cert)]))  # noqa: E731
         else:
             if c.host not in LOOPBACK and port == c.port:
                 log.warning("listening beyond loopback without TLS", extra={"fields": {
                     "event": "insecure_listen", "host": c.host}})
-            bound = self.grpc.add_insecure_port(address)
+            add = lambda: self.grpc.add_insecure_port(address)  # noqa: E731
+        try:
+            bound = add()
+        except RuntimeError:  # grpcio raises where older versions returned 0
+            bound = 0
         if not bound:
-            raise ConfigError(f"cannot listen on {address} (in use, or not an address of this machine)",
-                              where="--host/--port")
+            raise ConfigError(f"cannot listen on {address}: the port is in use, or the host is not an address of "
+                              "this machine; pick another --port (0: a free one) or --host", where="--host/--port")
         return bound
 
     def start(self, load: bool = True) -> "Server":
@@ -210,27 +237,35 @@ class Server:
         self.peers.ready(self.port, self.worker_port, self.metrics_port)
         return self
 
-    def stop(self, grace: float | None = None) -> None:
-        """Refuse new calls, let calls in flight finish within ``grace`` seconds, stop."""
+    def stop(self, grace: float | None = None) -> bool:
+        """Refuse new calls, let calls in flight finish within ``grace`` seconds, stop. Returns
+        False when the gRPC server had not stopped ``STOP_SLACK_SECONDS`` after the grace (a
+        call that ignores its cancellation): the caller should end the process."""
         if self._stopped.is_set():
-            return
+            return True
         self._stopped.set()
         self._set_health(False)
         g = self.config.drain_seconds if grace is None else grace
         log.info("draining", extra={"fields": {"event": "draining", "grace_seconds": g}})
-        self.grpc.stop(g).wait()
+        clean = self.grpc.stop(g).wait(g + STOP_SLACK_SECONDS)
+        if not clean:
+            log.warning("calls still running after the drain; stopping without them", extra={"fields": {
+                "event": "stop_forced", "grace_seconds": g}})
+        self._executor.shutdown(wait=False, cancel_futures=True)
         self.pool.shutdown()
         if self._httpd is not None:
             self._httpd.shutdown()
         logs.flush()  # the access lines of the last calls come before "stopped"
         log.info("stopped", extra={"fields": {"event": "stopped"}})
+        return clean
 
     def wait(self) -> None:
         self.grpc.wait_for_termination()
 
 
 def run(config: ServerConfig) -> int:
-    """Serve until SIGTERM/SIGINT, then drain and return 0 (the ``stateworth serve`` command)."""
+    """Serve until SIGTERM/SIGINT, then drain and return 0 (the ``stateworth serve`` command,
+    which then ends the process within a bound: see :func:`exit_bounded`)."""
     server = Server(config)
     stop = threading.Event()
 
@@ -249,3 +284,29 @@ def run(config: ServerConfig) -> int:
         for s, h in prev.items():
             signal.signal(s, h)
     return 0
+
+
+def exit_bounded(rc: int, seconds: float = 2.0) -> int:
+    """Return ``rc`` once the threads the server used have ended; when some still run after
+    ``seconds`` (a solve in the work pool cannot be interrupted, and threads of a stopped server
+    would hold the interpreter's exit until they end), end the process now with ``rc``. Logs
+    are flushed first. For the ``stateworth serve`` command only, never a library caller."""
+    end = time.monotonic() + seconds
+    busy = []
+    for t in threading.enumerate():
+        if t is threading.current_thread() or t.daemon:
+            continue
+        t.join(max(0.0, end - time.monotonic()))
+        if t.is_alive():
+            busy.append(t.name)
+    if not busy:
+        return rc
+    log.warning("threads still running after the stop; ending the process", extra={"fields": {
+        "event": "exit_forced", "threads": len(busy)}})
+    logs.flush()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except (OSError, ValueError):
+            pass
+    os._exit(rc)

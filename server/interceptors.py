@@ -3,14 +3,20 @@
 Tokens (when configured) travel as ``authorization: Bearer <token>`` metadata:
 
 * query token set: every ValuationService call needs it (or the admin token); missing or wrong
-  is UNAUTHENTICATED;
+  is UNAUTHENTICATED; no query token: queries are open;
 * admin token set: ModelAdminService calls need it; a valid query token there is
-  PERMISSION_DENIED; with a query token but no admin token, admin calls are refused
-  (PERMISSION_DENIED); with no token at all (the loopback default) everything is open;
+  PERMISSION_DENIED; no admin token: admin calls are refused (PERMISSION_DENIED) unless the
+  server was started with ``--admin-open`` (local development on loopback);
 * the health service is always open (load balancers probe it without credentials).
 
-Tokens are compared in constant time and never logged. Every finished call, refused ones
-included, gets one access line and one metrics observation.
+A token must match exactly (``authorization: Bearer <token>``, nothing stripped); tokens are
+compared in constant time and never logged. Every finished call, refused ones included, gets
+one access line and one metrics observation; a call whose caller went away (cancelled, or its
+deadline passed) is counted and logged as CANCELLED or DEADLINE_EXCEEDED, at info level.
+
+Request bytes that do not decode as the method's request message are answered
+INVALID_ARGUMENT (the gRPC library alone would answer INTERNAL): the deserializer of every
+method is wrapped so that it never raises, and the call is refused where it reads the request.
 
 One interceptor does all of it, and the wrapped handler of each method is built once and kept
 (the services are fixed when the server starts): a single-value lookup costs the service a few
@@ -27,6 +33,7 @@ from typing import Callable
 
 import grpc
 
+from stateworth.errors import QueryError
 from stateworth.server.errors import rich_status
 from stateworth.server.logs import info_line
 from stateworth.server.metrics import Metrics
@@ -40,11 +47,59 @@ OPEN_PREFIXES = ("/grpc.health.v1.Health/",)
 def _token(metadata) -> str | None:
     for k, v in metadata or ():
         if k.lower() == "authorization":
-            v = v.decode() if isinstance(v, bytes) else v
-            if v.startswith("Bearer "):
-                return v[7:].strip()
-            return ""
+            v = v.decode("utf-8", "replace") if isinstance(v, bytes) else v
+            return v[7:] if v.startswith("Bearer ") else ""
     return None
+
+
+UNDECODABLE = ("the request could not be decoded as the method's request message (not valid protobuf of "
+               "that type); send the message the method declares")
+
+
+class Undecodable:
+    """What the wrapped deserializer returns for bytes that do not decode (never raised there:
+    the gRPC library would answer INTERNAL)."""
+
+    __slots__ = ()
+
+
+class UndecodableRequest(QueryError):
+    """A request message that does not decode (INVALID_ARGUMENT, field ``request``)."""
+
+    def __init__(self) -> None:
+        super().__init__(UNDECODABLE, field="request")
+
+
+def _lenient(deserializer):
+    if deserializer is None:
+        return None
+
+    def parse(data):
+        try:
+            return deserializer(data)
+        except Exception:  # noqa: BLE001 - any failure to decode is the caller's bytes
+            return Undecodable()
+    return parse
+
+
+def _checked(requests):
+    """A request stream that raises :class:`UndecodableRequest` at an undecodable message."""
+    for r in requests:
+        if isinstance(r, Undecodable):
+            raise UndecodableRequest()
+        yield r
+
+
+def gone_code(context) -> grpc.StatusCode | None:
+    """CANCELLED or DEADLINE_EXCEEDED when the caller is gone (cancelled the call, or its
+    deadline passed), else None."""
+    try:
+        if context.is_active():
+            return None
+        remaining = context.time_remaining()
+    except Exception:  # noqa: BLE001 - a context without these (tests' fakes): not gone
+        return None
+    return grpc.StatusCode.DEADLINE_EXCEEDED if remaining is not None and remaining <= 0 else grpc.StatusCode.CANCELLED
 
 
 def _eq(a: str | None, b: str | None) -> bool:
@@ -63,32 +118,31 @@ def _refuse(code: grpc.StatusCode, message: str):
     return unary, stream
 
 
-def _rebuild(handler: grpc.RpcMethodHandler, wrap: Callable) -> grpc.RpcMethodHandler:
-    """The same handler with its behaviour wrapped (``wrap(fn, streaming_response)``)."""
+def _rebuild(handler: grpc.RpcMethodHandler, wrap: Callable, deserializer=None) -> grpc.RpcMethodHandler:
+    """The same handler with its behaviour wrapped (``wrap(fn, streaming_response)``) and, if
+    given, another request deserializer."""
+    de = deserializer or handler.request_deserializer
     if handler.unary_unary:
-        return grpc.unary_unary_rpc_method_handler(wrap(handler.unary_unary, False), handler.request_deserializer,
-                                                   handler.response_serializer)
+        return grpc.unary_unary_rpc_method_handler(wrap(handler.unary_unary, False), de, handler.response_serializer)
     if handler.unary_stream:
-        return grpc.unary_stream_rpc_method_handler(wrap(handler.unary_stream, True), handler.request_deserializer,
-                                                    handler.response_serializer)
+        return grpc.unary_stream_rpc_method_handler(wrap(handler.unary_stream, True), de, handler.response_serializer)
     if handler.stream_unary:
-        return grpc.stream_unary_rpc_method_handler(wrap(handler.stream_unary, False), handler.request_deserializer,
-                                                    handler.response_serializer)
-    return grpc.stream_stream_rpc_method_handler(wrap(handler.stream_stream, True), handler.request_deserializer,
-                                                 handler.response_serializer)
+        return grpc.stream_unary_rpc_method_handler(wrap(handler.stream_unary, False), de, handler.response_serializer)
+    return grpc.stream_stream_rpc_method_handler(wrap(handler.stream_stream, True), de, handler.response_serializer)
 
 
 class TokenRules:
     """The verdict of the token rules (module docstring) for a method and a presented token."""
 
-    def __init__(self, token: str | None, admin_token: str | None) -> None:
+    def __init__(self, token: str | None, admin_token: str | None, admin_open: bool = False) -> None:
         self.token = token or None
         self.admin_token = admin_token or None
+        self.admin_open = bool(admin_open) and self.admin_token is None
 
     @property
     def open(self) -> bool:
-        """No token configured: every call is allowed."""
-        return self.token is None and self.admin_token is None
+        """No query token and admin calls open (``--admin-open``): every call is allowed."""
+        return self.token is None and self.admin_open
 
     def verdict(self, method: str, presented: str | None) -> tuple[grpc.StatusCode, str] | None:
         """None when the call may go ahead, else (code, message)."""
@@ -96,8 +150,11 @@ class TokenRules:
             return None
         if method.startswith(ADMIN_PREFIX):
             if self.admin_token is None:
+                if self.admin_open:
+                    return None
                 return (grpc.StatusCode.PERMISSION_DENIED,
-                        "admin calls are disabled on this server; start it with --admin-token-file to enable them")
+                        "admin calls are off on this server; start it with --admin-token-file to enable them "
+                        "(or --admin-open for local development on loopback)")
             if _eq(presented, self.admin_token):
                 return None
             if _eq(presented, self.token):
@@ -113,9 +170,10 @@ class CallInterceptor(grpc.ServerInterceptor):
     """Token checks (:class:`TokenRules`), then one JSON access line and one metrics
     observation per finished call."""
 
-    def __init__(self, metrics: Metrics, token: str | None = None, admin_token: str | None = None) -> None:
+    def __init__(self, metrics: Metrics, token: str | None = None, admin_token: str | None = None,
+                 admin_open: bool = False) -> None:
         self.metrics = metrics
-        self.rules = TokenRules(token, admin_token)
+        self.rules = TokenRules(token, admin_token, admin_open)
         # method -> (handler, handler wrapped for access); only registered methods get here
         # (unknown ones are None and not kept), so the maps stay as small as the services
         self._handlers: dict[str, tuple[grpc.RpcMethodHandler, grpc.RpcMethodHandler]] = {}
@@ -128,7 +186,9 @@ class CallInterceptor(grpc.ServerInterceptor):
             inner = continuation(handler_call_details)
             if inner is None:
                 return None
-            pair = self._handlers.setdefault(method, (inner, _rebuild(inner, self._access(method))))
+            streaming_request = bool(inner.stream_unary or inner.stream_stream)
+            wrapped = _rebuild(inner, self._access(method, streaming_request), _lenient(inner.request_deserializer))
+            pair = self._handlers.setdefault(method, (inner, wrapped))
         if self.rules.open:
             return pair[1]
         verdict = self.rules.verdict(method, _token(handler_call_details.invocation_metadata))
@@ -140,17 +200,22 @@ class CallInterceptor(grpc.ServerInterceptor):
             inner = pair[0]
             unary, stream = _refuse(*verdict)
             streaming_request = bool(inner.stream_unary or inner.stream_stream)
-            refused = _rebuild(inner, lambda fn, streaming: stream if streaming or streaming_request else unary)
-            refusal = self._refusals.setdefault(key, _rebuild(refused, self._access(method)))
+            refused = _rebuild(inner, lambda fn, streaming: stream if streaming or streaming_request else unary,
+                               _lenient(inner.request_deserializer))
+            refusal = self._refusals.setdefault(key, _rebuild(refused, self._access(method, False)))
         return refusal
 
-    def _access(self, method: str) -> Callable:
-        """``wrap(fn, streaming)`` for :func:`_rebuild`: times ``fn`` and writes the access line."""
+    def _access(self, method: str, streaming_request: bool) -> Callable:
+        """``wrap(fn, streaming)`` for :func:`_rebuild`: refuses undecodable requests, times ``fn``
+        and writes the access line."""
         observe = self.metrics.observe
+        undecodable = rich_status(grpc.StatusCode.INVALID_ARGUMENT, UNDECODABLE, "request")
 
         def finish(context, t0: float, failed: BaseException | None) -> None:
             dt = time.perf_counter() - t0
-            code = context.code() if hasattr(context, "code") else None
+            code = gone_code(context)
+            if code is None:
+                code = context.code() if hasattr(context, "code") else None
             if code is None:
                 code = grpc.StatusCode.UNKNOWN if failed is not None else grpc.StatusCode.OK
             name = code.name if isinstance(code, grpc.StatusCode) else str(code)
@@ -161,13 +226,27 @@ class CallInterceptor(grpc.ServerInterceptor):
                 fields.update(extra)
             info_line(log, "rpc", fields)
 
+        def prepare(request, context):
+            """The request as the handler gets it: a checked stream, or the message itself; an
+            undecodable message refuses the call here."""
+            if streaming_request:
+                return _checked(request)
+            if isinstance(request, Undecodable):
+                _note_field(context)
+                context.abort_with_status(undecodable)
+            return request
+
         def wrap(fn, streaming):
             if streaming:
                 def gen(request, context):
                     t0 = time.perf_counter()
                     failed = None
                     try:
-                        yield from fn(request, context)
+                        yield from fn(prepare(request, context), context)
+                    except UndecodableRequest as e:  # a handler that did not turn it into a status
+                        failed = e
+                        _note_field(context)
+                        context.abort_with_status(undecodable)
                     except BaseException as e:
                         failed = e
                         raise
@@ -179,7 +258,11 @@ class CallInterceptor(grpc.ServerInterceptor):
                 t0 = time.perf_counter()
                 failed = None
                 try:
-                    return fn(request, context)
+                    return fn(prepare(request, context), context)
+                except UndecodableRequest as e:
+                    failed = e
+                    _note_field(context)
+                    context.abort_with_status(undecodable)
                 except BaseException as e:
                     failed = e
                     raise
@@ -188,3 +271,14 @@ class CallInterceptor(grpc.ServerInterceptor):
             return call
 
         return wrap
+
+
+def _note_field(context) -> None:
+    try:
+        fields = getattr(context, "_stateworth_fields", None)
+        if fields is None:
+            fields = {}
+            setattr(context, "_stateworth_fields", fields)
+        fields["field"] = "request"
+    except AttributeError:
+        pass

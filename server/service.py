@@ -19,8 +19,9 @@ import numpy as np
 from stateworth.errors import QueryError
 from stateworth.server import convert as cv
 from stateworth.server.errors import LoadError, ServiceError, UnavailableError, invalid, to_status
+from stateworth.server.interceptors import gone_code
 from stateworth.server.metrics import Metrics
-from stateworth.server.store import ModelStore, Served, parse_name
+from stateworth.server.store import FAILED, KEPT, LOADED, PREFIX, REMOVED, ModelStore, Served, parse_name
 from stateworth.server.work import WorkPool
 from stateworth.v1 import admin_service_pb2 as apb
 from stateworth.v1 import admin_service_pb2_grpc as agrpc
@@ -51,6 +52,9 @@ def _note(context, **fields: Any) -> None:
 
 
 def _abort(context, err: BaseException) -> None:
+    gone = gone_code(context)
+    if gone is not None:  # the caller cancelled or its deadline passed: nobody to answer, no fault of ours
+        context.abort(gone, "the caller cancelled the call or its deadline passed")
     status, field = to_status(err)
     if field:
         _note(context, field=field)
@@ -364,6 +368,9 @@ class ValuationServicer(vgrpc.ValuationServiceServicer):
         control = snap.resolve(request.name, request.control_version, version_field="control_version")
         treatment = snap.resolve(request.name, request.treatment_version, version_field="treatment_version")
         _note(context, model=control.name, version=f"{control.version}..{treatment.version}")
+        if request.seed < 0:
+            raise invalid(f"seed must be 0 or more (got {request.seed}); it picks the pairing of the two arms' draws",
+                          "seed")
         stream = cv.stream_of(control, request.stream)
         level = cv.level_of(request, 0.9)
         w = cv.weights(control.valuer, request.cohort, "cohort", self.limits.max_batch)
@@ -442,7 +449,8 @@ class AdminServicer(agrpc.ModelAdminServiceServicer):
             self.metrics.reload(False)
             log.warning(f"{op} failed", extra={"fields": {"event": f"{op}_failed", "error": e.__class__.__name__}})
             raise
-        self.metrics.reload(True)
+        # a reload that left a folder on its previous version counts as failed too
+        self.metrics.reload(op == "load" or not out.failed)
         return out
 
     def _run(self, op: str, artifact: str = ""):
@@ -471,8 +479,19 @@ class AdminServicer(agrpc.ModelAdminServiceServicer):
 
     @unary
     def ReloadModels(self, request, context):
-        snap, loaded, kept, dropped = self._run("reload")
-        resp = apb.ReloadModelsResponse(loaded_count=loaded, kept_count=kept, dropped_count=dropped)
+        report = self._run("reload")
+        snap = report.snapshot
+        resp = apb.ReloadModelsResponse(loaded_count=report.loaded, kept_count=report.kept,
+                                        dropped_count=report.dropped, failed_count=report.failed)
         for s in snap.all():
             resp.models.append(cv.model_version(s, snap.defaults[s.name] == s.version, full=False))
+        for o in report.outcomes:
+            resp.outcomes.add(artifact=o.artifact, result=_RESULTS[o.result], name=PREFIX + o.name if o.name else "",
+                              version=o.version, error=o.error)
+        if report.failed:
+            _note(context, failed=report.failed)
         return resp
+
+
+_RESULTS = {LOADED: apb.RELOAD_RESULT_LOADED, KEPT: apb.RELOAD_RESULT_KEPT, FAILED: apb.RELOAD_RESULT_FAILED,
+            REMOVED: apb.RELOAD_RESULT_REMOVED}

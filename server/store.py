@@ -154,27 +154,77 @@ def parse_name(resource: str, field_name: str = "name") -> str:
     return resource[len(PREFIX):]
 
 
-def _diagnostics(path: Path, manifest: dict) -> dict:
+def _diagnostics(files: Path, manifest: dict, root: Path) -> dict:
     """Fit diagnostics stored with an artifact: ``diagnostics.json`` or the manifest metadata."""
-    f = path / "diagnostics.json"
-    doc: Any = None
-    if f.is_file():
-        try:
-            doc = json.loads(f.read_text())
-        except (OSError, ValueError):
-            doc = None
+    from stateworth.rules.artifact import read_json_file
+
+    try:
+        doc: Any = read_json_file(files / "diagnostics.json", "diagnostics.json", files, root)
+    except (OSError, StateworthError):
+        doc = None
     if doc is None:
         doc = (manifest.get("metadata") or {}).get("diagnostics")
     return doc if isinstance(doc, dict) else {}
 
 
-def artifact_dirs(root: Path) -> list[Path]:
-    """Artifact directories directly inside ``root`` (those holding a manifest.json); names
-    starting with a dot are the temporary directories of writers and are skipped."""
+def model_folders(root: Path) -> list[Path]:
+    """The entries of ``root`` that may be model folders: visible directories (links included:
+    loading refuses those that lead outside ``root``). Names starting with a dot are writers'
+    temporary directories and are skipped."""
     if not root.is_dir():
         raise LoadError(f"model directory {root} does not exist or is not a directory")
-    return sorted(p for p in root.iterdir() if p.is_dir() and not p.name.startswith(".")
-                  and (p / "manifest.json").is_file())
+    return sorted(p for p in root.iterdir() if not p.name.startswith(".") and p.is_dir())
+
+
+def check_artifact_name(artifact: str) -> None:
+    """INVALID_ARGUMENT unless ``artifact`` is a plain folder name (no separators, not hidden,
+    no NUL, at most 255 bytes: what a file system accepts)."""
+    if (not artifact or "/" in artifact or "\\" in artifact or "\0" in artifact or artifact.startswith(".")
+            or len(artifact.encode("utf-8", "surrogatepass")) > 255):
+        raise invalid("artifact must be the name of a folder inside the model directory (no path separators, "
+                      f"not hidden, at most 255 bytes); got {artifact[:80]!r}"
+                      + ("..." if len(artifact) > 80 else ""), "artifact")
+
+
+#: what a reload did with one model folder (the ``result`` of :class:`Outcome`)
+LOADED, KEPT, FAILED, REMOVED = "loaded", "kept", "failed", "removed"
+
+
+@dataclass(frozen=True)
+class Outcome:
+    """One model folder after a reload: ``result`` is LOADED (a new version built), KEPT (the
+    same content, still served), FAILED (could not be loaded: ``error`` says why, and the
+    version it served before, if any, is still served) or REMOVED (its folder is gone)."""
+
+    artifact: str
+    result: str
+    name: str = ""
+    version: str = ""
+    error: str = ""
+
+
+@dataclass(frozen=True)
+class ReloadReport:
+    """The snapshot a reload swapped in and what happened to each model folder."""
+
+    snapshot: Snapshot
+    outcomes: tuple[Outcome, ...]
+    dropped: int
+
+    def count(self, result: str) -> int:
+        return sum(1 for o in self.outcomes if o.result == result)
+
+    @property
+    def loaded(self) -> int:
+        return self.count(LOADED)
+
+    @property
+    def kept(self) -> int:
+        return self.count(KEPT)
+
+    @property
+    def failed(self) -> int:
+        return self.count(FAILED)
 
 
 class ModelStore:
@@ -197,16 +247,25 @@ class ModelStore:
 
     # ---- building ---------------------------------------------------------------------------
     def _load(self, path: Path, reuse: dict[str, Served]) -> Served:
-        from stateworth.rules import load_model, read_manifest
+        """Load (or reuse) the current version of model folder ``path``; LoadError says why not."""
+        from stateworth.rules.artifact import MANIFEST, load_model, model_files, read_manifest
 
         try:
-            manifest = read_manifest(path)
-            mtime = (path / "manifest.json").stat().st_mtime
-            known = reuse.get(str(manifest.get("hash")))
-            if known is not None and known.artifact == path.name:
-                return known
-            t0 = time.perf_counter()
-            model, _extra = load_model(path)
+            for attempt in range(3):  # a version replaced while it is read is read again
+                files = model_files(path, self.root)
+                try:
+                    manifest = read_manifest(files, self.root)
+                    mtime = (files / MANIFEST).stat().st_mtime
+                    known = reuse.get(manifest["hash"])
+                    if known is not None and known.artifact == path.name:
+                        return known
+                    t0 = time.perf_counter()
+                    model, _extra = load_model(files, self.root)
+                    break
+                except (StateworthError, FileNotFoundError):
+                    if attempt < 2 and files != path and not files.exists():
+                        continue
+                    raise
             if self._build is not None:
                 valuer = self._build(model)
             else:
@@ -215,11 +274,16 @@ class ModelStore:
         except StateworthError as e:
             raise LoadError(f"artifact '{path.name}' could not be loaded: {e}; the serving models are unchanged",
                             field="artifact") from None
+        except OSError as e:
+            raise LoadError(f"artifact '{path.name}' could not be read ({e.strerror or e}); the serving models are "
+                            "unchanged", field="artifact") from None
         except Exception as e:  # noqa: BLE001 - a bad artifact must never take down the server
-            raise LoadError(f"artifact '{path.name}' could not be loaded ({e.__class__.__name__}); the serving "
-                            "models are unchanged", field="artifact") from None
+            log.error("artifact load failed unexpectedly", extra={"fields": {
+                "event": "load_error", "artifact": path.name, "exception": e.__class__.__name__}})
+            raise LoadError(f"artifact '{path.name}' could not be loaded: an unexpected error while building it "
+                            "(see the server log); the serving models are unchanged", field="artifact") from None
         return Served(name=model.name, version=model.version, artifact=path.name, valuer=valuer,
-                      manifest=manifest, diagnostics=_diagnostics(path, manifest), mtime=mtime,
+                      manifest=manifest, diagnostics=_diagnostics(files, manifest, self.root), mtime=mtime,
                       load_time=time.time(), build_seconds=time.perf_counter() - t0)
 
     @staticmethod
@@ -236,36 +300,85 @@ class ModelStore:
         for fn in self.listeners:
             fn(snap)
 
-    # ---- public -----------------------------------------------------------------------------
-    def reload_all(self) -> tuple[Snapshot, int, int, int]:
-        """Rescan the model directory; serve exactly what it holds.
+    def clean(self) -> list[dict[str, str]]:
+        """Remove (or restore) what interrupted writes left in the model directory, one log line
+        each (see :func:`stateworth.rules.artifact.clean_leftovers`)."""
+        from stateworth.rules.artifact import clean_leftovers
 
-        Returns (snapshot, loaded, kept, dropped). Raises LoadError (snapshot unchanged)."""
+        done = clean_leftovers(self.root) if self.root.is_dir() else []
+        for d in done:
+            log.warning(f"leftover of an interrupted write {d['action']}", extra={"fields": {
+                "event": "leftover", **d}})
+        return done
+
+    # ---- public -----------------------------------------------------------------------------
+    def reload_all(self) -> ReloadReport:
+        """Rescan the model directory: load what changed, keep what did not.
+
+        A model folder that cannot be loaded (missing or broken files) keeps serving the version
+        it served before, and its outcome says why; a folder that is gone is no longer served.
+        Raises LoadError (snapshot unchanged) when the directory itself cannot be read, or when
+        nothing was served before and no folder could be loaded."""
         with self._reload_lock:
+            self.clean()
             old = self._snapshot
             reuse = {s.content_hash: s for s in old.all()}
-            served = [self._load(p, reuse) for p in artifact_dirs(self.root)]
-            kept = sum(1 for s in served if any(s is o for o in reuse.values()))
+            before: dict[str, list[Served]] = {}
+            for s in old.all():
+                before.setdefault(s.artifact, []).append(s)
+            served: list[Served] = []
+            outcomes: list[Outcome] = []
+            first_error: LoadError | None = None
+            seen = set()
+            for p in model_folders(self.root):
+                seen.add(p.name)
+                if p.name not in before and not _looks_like_model(p):
+                    continue  # not a model folder (and never was one here)
+                try:
+                    s = self._load(p, reuse)
+                except LoadError as e:
+                    first_error = first_error or e
+                    prev = before.get(p.name, [])
+                    served += prev
+                    outcomes.append(Outcome(p.name, FAILED, name=prev[0].name if prev else "",
+                                            version=prev[0].version if prev else "", error=e.message))
+                    log.warning("model folder could not be loaded; its previous version (if any) is still served",
+                                extra={"fields": {"event": "reload_failed_model", "artifact": p.name,
+                                                  "kept_version": prev[0].version if prev else None,
+                                                  "error": e.message}})
+                    continue
+                served.append(s)
+                outcomes.append(Outcome(p.name, KEPT if any(s is o for o in reuse.values()) else LOADED,
+                                        name=s.name, version=s.version))
+            for artifact, prev in before.items():
+                if artifact not in seen:
+                    outcomes.append(Outcome(artifact, REMOVED, name=prev[0].name))
+            if first_error is not None and old.empty and not served:
+                raise first_error
             new = self._assemble(served, old.generation + 1)
             new_keys = {(s.name, s.version) for s in new.all()}
             dropped = sum(1 for s in old.all() if (s.name, s.version) not in new_keys)
             self._swap(new)
+            report = ReloadReport(new, tuple(outcomes), dropped)
             log.info("models reloaded", extra={"fields": {
-                "event": "reload", "generation": new.generation, "loaded": len(served) - kept, "kept": kept,
-                "dropped": dropped, "versions": [f"{s.name}@{s.version}" for s in new.all()]}})
-            return new, len(served) - kept, kept, dropped
+                "event": "reload", "generation": new.generation, "loaded": report.loaded, "kept": report.kept,
+                "failed": report.failed, "dropped": dropped,
+                "versions": [f"{s.name}@{s.version}" for s in new.all()]}})
+            return report
 
     def load_one(self, artifact: str) -> tuple[Served, bool]:
         """Load (or reload) one artifact directory; other artifacts' versions stay as they are.
 
         Returns (served, replaced): ``replaced`` when the artifact previously served another
         version (that version is dropped). Raises LoadError / QueryError (snapshot unchanged)."""
-        if not artifact or "/" in artifact or "\\" in artifact or artifact.startswith("."):
-            raise invalid("artifact must be the name of a directory inside the model directory "
-                          f"(no path separators, not hidden); got {artifact[:80]!r}", "artifact")
+        check_artifact_name(artifact)
         path = self.root / artifact
-        if not (path / "manifest.json").is_file():
-            raise NotFoundError(f"no artifact '{artifact}' in the model directory (no {artifact}/manifest.json)",
+        try:
+            present = path.is_dir() and _looks_like_model(path)
+        except OSError:
+            present = False
+        if not present:
+            raise NotFoundError(f"no artifact '{artifact}' in the model directory (no model folder of that name)",
                                 field="artifact")
         with self._reload_lock:
             old = self._snapshot
@@ -279,3 +392,9 @@ class ModelStore:
                                                        "model": s.name, "version": s.version,
                                                        "artifact": artifact, "replaced": replaced}})
             return s, replaced
+
+
+def _looks_like_model(p: Path) -> bool:
+    from stateworth.rules.artifact import is_model_dir
+
+    return is_model_dir(p)

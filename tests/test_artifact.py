@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from stateworth.errors import ArtifactError
-from stateworth.rules import compile_model, load_model, parse_spec, read_manifest, save_model
+from stateworth.rules import compile_model, load_model, model_files, parse_spec, read_manifest, save_model
 
 SPEC = {
     "model": {"name": "artifact", "discount": {"annual_rate": 0.08}},
@@ -52,7 +52,7 @@ def test_round_trip(model, saved):
     np.testing.assert_array_equal(np.asarray(loaded.operator.mv(x)), np.asarray(model.operator.mv(x)))
     assert loaded.beta == model.beta
     np.testing.assert_array_equal(extra["values"], np.arange(model.n_states))
-    assert json.loads((saved / "diagnostics.json").read_text()) == {"note": "x"}
+    assert json.loads((model_files(saved) / "diagnostics.json").read_text()) == {"note": "x"}
     manifest = read_manifest(saved)
     assert manifest["hash"] == model.hash and manifest["n_states"] == model.n_states
 
@@ -86,6 +86,7 @@ def test_failed_save_leaves_nothing_half_written(model, tmp_path, monkeypatch):
 
 
 def _rewrite_npz(path, change):
+    path = model_files(path)
     with np.load(path / "arrays.npz", allow_pickle=False) as npz:
         arrays = {k: npz[k].copy() for k in npz.files}
     change(arrays)
@@ -110,56 +111,56 @@ def test_changed_array_with_matching_checksum_is_refused_by_the_content_hash(sav
     def change(arrays):
         arrays["table.status"][0, 0] = [0.85, 0.15]
     arrays = _rewrite_npz(saved, change)
-    manifest = json.loads((saved / "manifest.json").read_text())
+    manifest = json.loads((model_files(saved) / "manifest.json").read_text())
     a = np.ascontiguousarray(arrays["table.status"])
     manifest["arrays"]["table.status"]["sha256"] = hashlib.sha256(a.tobytes()).hexdigest()
-    (saved / "manifest.json").write_text(json.dumps(manifest))
+    (model_files(saved) / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(ArtifactError, match=r"content hash does not match the manifest"):
         load_model(saved)
 
 
 def test_changed_manifest_spec_is_refused(saved):
-    manifest = json.loads((saved / "manifest.json").read_text())
+    manifest = json.loads((model_files(saved) / "manifest.json").read_text())
     manifest["spec"]["rewards"]["revenue"]["on_join"] = 0.0
-    (saved / "manifest.json").write_text(json.dumps(manifest))
+    (model_files(saved) / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(ArtifactError, match=r"content hash does not match"):
         load_model(saved)
 
 
 def test_changed_manifest_hash_is_refused(saved):
-    manifest = json.loads((saved / "manifest.json").read_text())
+    manifest = json.loads((model_files(saved) / "manifest.json").read_text())
     manifest["hash"] = "0" * 64
-    (saved / "manifest.json").write_text(json.dumps(manifest))
+    (model_files(saved) / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(ArtifactError, match=r"content hash does not match"):
         load_model(saved)
 
 
 def test_manifest_not_json_is_refused(saved):
-    (saved / "manifest.json").write_text("{not json")
+    (model_files(saved) / "manifest.json").write_text("{not json")
     with pytest.raises(ArtifactError, match=r"manifest\.json is not valid JSON"):
         load_model(saved)
 
 
 def test_invalid_stored_spec_is_refused(saved):
-    manifest = json.loads((saved / "manifest.json").read_text())
+    manifest = json.loads((model_files(saved) / "manifest.json").read_text())
     manifest["spec"]["model"]["discount"]["annual_rate"] = 7.0
-    (saved / "manifest.json").write_text(json.dumps(manifest))
+    (model_files(saved) / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(ArtifactError, match=r"the stored spec is invalid: .*annual_rate"):
         load_model(saved)
 
 
 def test_unknown_format_is_refused(saved):
-    manifest = json.loads((saved / "manifest.json").read_text())
+    manifest = json.loads((model_files(saved) / "manifest.json").read_text())
     manifest["format"] = "something/9"
-    (saved / "manifest.json").write_text(json.dumps(manifest))
+    (model_files(saved) / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(ArtifactError, match=r"unknown artifact format"):
         load_model(saved)
 
 
 @pytest.mark.parametrize("keep", [0.5, 0.9])
 def test_truncated_arrays_are_refused(saved, keep):
-    data = (saved / "arrays.npz").read_bytes()
-    (saved / "arrays.npz").write_bytes(data[: int(len(data) * keep)])
+    data = (model_files(saved) / "arrays.npz").read_bytes()
+    (model_files(saved) / "arrays.npz").write_bytes(data[: int(len(data) * keep)])
     with pytest.raises(ArtifactError, match=r"arrays\.npz cannot be read .*truncated or damaged"):
         load_model(saved)
 
@@ -172,7 +173,7 @@ def test_array_missing_from_the_archive_is_refused(saved):
 
 def test_pickled_array_is_refused(saved):
     buf = io.BytesIO()
-    with zipfile.ZipFile(saved / "arrays.npz") as zin, zipfile.ZipFile(buf, "w") as zout:
+    with zipfile.ZipFile(model_files(saved) / "arrays.npz") as zin, zipfile.ZipFile(buf, "w") as zout:
         for name in zin.namelist():
             zout.writestr(name, zin.read(name))
     # an object array can only be stored pickled; loading with allow_pickle=False must refuse it
@@ -180,7 +181,7 @@ def test_pickled_array_is_refused(saved):
     np.save(obj, np.array([{"a": 1}], dtype=object), allow_pickle=True)
     with zipfile.ZipFile(buf, "a") as zout:
         zout.writestr("extra.evil.npy", obj.getvalue())
-    (saved / "arrays.npz").write_bytes(buf.getvalue())
+    (model_files(saved) / "arrays.npz").write_bytes(buf.getvalue())
     with pytest.raises(ArtifactError, match=r"arrays\.npz cannot be read"):
         load_model(saved)
 
@@ -188,7 +189,7 @@ def test_pickled_array_is_refused(saved):
 @pytest.mark.parametrize("name,match", [("arrays.npz", r"arrays\.npz is missing"),
                                         ("manifest.json", r"no manifest\.json")])
 def test_missing_file_is_refused(saved, name, match):
-    (saved / name).unlink()
+    (model_files(saved) / name).unlink()
     with pytest.raises(ArtifactError, match=match):
         load_model(saved)
 

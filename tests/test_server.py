@@ -19,6 +19,7 @@ from hypothesis import strategies as st
 
 from serving import MODEL, STATE, ServerProcess, compile_tiny, write_artifact
 from stateworth.clients import client as cl
+from stateworth.v1 import admin_service_pb2 as apb
 from stateworth.v1 import valuation_service_pb2 as pb
 from stateworth.v1 import valuation_service_pb2_grpc as vgrpc
 
@@ -33,7 +34,7 @@ def served(tmp_path_factory):
     d = tmp_path_factory.mktemp("models")
     va = write_artifact(d, "tiny-a", seed=0, draws=6)
     vb = write_artifact(d, "tiny-b", seed=1, draws=6)  # written last: the default version
-    srv = ServerProcess(d, "--metrics-port", "0", "--max-batch", "5000")
+    srv = ServerProcess(d, "--metrics-port", "0", "--max-batch", "5000", "--admin-open")
     yield {"server": srv, "dir": d, "a": va, "b": vb}
     rc = srv.stop()
     assert rc == 0, "".join(srv.lines[-20:])
@@ -276,8 +277,11 @@ def test_failed_load_leaves_models_untouched(served, client):
         with pytest.raises(cl.FailedPrecondition) as e:
             client.load_model("broken")
         assert "broken" in str(e.value) and "unchanged" in str(e.value)
-        with pytest.raises(cl.FailedPrecondition):
-            client.reload_models()
+        r = client.reload_models()  # the broken folder is reported; the others keep serving
+        by = {o.artifact: o for o in r.outcomes}
+        assert r.failed_count == 1 and by["broken"].result == apb.RELOAD_RESULT_FAILED
+        assert "manifest.json is not valid JSON" in by["broken"].error and not by["broken"].version
+        assert by["tiny-b"].result == apb.RELOAD_RESULT_KEPT and by["tiny-b"].version == served["b"]
         with pytest.raises(cl.InvalidArgument):
             client.load_model("../etc")
         assert client.get_model(MODEL).version == served["b"]

@@ -22,7 +22,7 @@ from stateworth.clients import client as cl
 @pytest.fixture(scope="module")
 def empty_server(tmp_path_factory):
     d = tmp_path_factory.mktemp("reload-models")
-    srv = ServerProcess(d, "--drain-seconds", "30")
+    srv = ServerProcess(d, "--drain-seconds", "30", "--admin-open")
     yield srv, d
     srv.stop()
 

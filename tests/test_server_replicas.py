@@ -19,7 +19,7 @@ def replicas(tmp_path_factory):
     procs: list[ServerProcess] = [None, None]  # type: ignore[list-item]
 
     def start(k: int) -> None:
-        procs[k] = ServerProcess(d)
+        procs[k] = ServerProcess(d, "--admin-open")
 
     ts = [threading.Thread(target=start, args=(k,)) for k in range(2)]
     for t in ts:

@@ -38,7 +38,8 @@ def test_merged_metrics_label_every_sample_and_keep_each_family_together():
 def workers(tmp_path_factory):
     d = tmp_path_factory.mktemp("worker-models")
     v1 = write_artifact(d, "tiny", seed=0)
-    srv = ServerProcess(d, "--workers", "2", "--threads", "2", "--metrics-port", "0", "--log-flush-ms", "0")
+    srv = ServerProcess(d, "--workers", "2", "--threads", "2", "--metrics-port", "0", "--log-flush-ms", "0",
+                        "--admin-open")
     yield srv, d, v1
     assert srv.stop() == 0
 

@@ -154,6 +154,7 @@ def _fig(f) -> str:
 def run(args: argparse.Namespace) -> int:
     from stateworth.clients.client import Client
     from stateworth.clients.commands._common import CAUTION_LINE, parse_pairs, parse_selection
+    from stateworth.v1 import admin_service_pb2 as apb
 
     targets = [t.strip() for t in args.target.split(",") if t.strip()]
     client = Client(targets if len(targets) > 1 else targets[0], token=read_secret(args.token_file, "token"),
@@ -236,7 +237,17 @@ def run(args: argparse.Namespace) -> int:
                                  + (" (replaced the previous version)" if r.replaced else ""))
         elif a == "reload":
             r = client.reload_models()
-            _print(r, args.json, f"reloaded: {r.loaded_count} loaded, {r.kept_count} kept, {r.dropped_count} dropped; "
-                                 "serving " + ", ".join(f"{m.name}@{m.version}" for m in r.models))
+            lines = [f"reloaded: {r.loaded_count} loaded, {r.kept_count} kept, {r.failed_count} failed, "
+                     f"{r.dropped_count} dropped; serving " + ", ".join(f"{m.name}@{m.version}" for m in r.models)]
+            for o in r.outcomes:
+                result = apb.ReloadResult.Name(o.result).removeprefix("RELOAD_RESULT_").lower()
+                lines.append(f"  {o.artifact}: {result}" + (f" {o.name}@{o.version}" if o.version else "")
+                             + (f" ({o.error})" if o.error else ""))
+            _print(r, args.json, "\n".join(lines))
+            if r.failed_count:
+                print(f"error: {r.failed_count} model folder(s) could not be loaded; each keeps serving the version "
+                      "it had (if any)", file=sys.stderr)
+                sys.stdout.flush()
+                return 1
     sys.stdout.flush()
     return 0

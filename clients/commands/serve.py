@@ -10,10 +10,13 @@ DESCRIPTION = """Serve every compiled model in MODEL_DIR over gRPC (package stat
 
 MODEL_DIR holds artifact directories (manifest.json + arrays.npz, as `stateworth fit` or
 `stateworth solve --save` write them). Each is verified and solved at start; the admin calls
-LoadModel / ReloadModels load changed artifacts off to the side and swap them in atomically.
+LoadModel / ReloadModels load changed artifacts off to the side and swap them in atomically;
+a model folder that cannot be loaded keeps serving the version it had. Admin calls are off
+unless --admin-token-file is given (or --admin-open, for local development on loopback).
 Listens on loopback unless --host says otherwise; use TLS and tokens beyond it. Logs are JSON
 lines on stderr; --metrics-port serves Prometheus metrics at http://127.0.0.1:PORT/metrics.
-SIGTERM drains the calls in flight and exits 0. Health: grpc.health.v1, NOT_SERVING while no
+SIGTERM drains the calls in flight (--drain-seconds) and exits 0, at most a few seconds after
+the drain time whatever the calls do. Health: grpc.health.v1, NOT_SERVING while no
 model is loaded.
 
 --workers N runs N server processes on the one port (SO_REUSEPORT: the kernel spreads new
@@ -27,6 +30,7 @@ Answers are model-based estimates under the model's causal assumptions; not acco
 example:
   stateworth serve models/ --port 50051 --token-file query.token --admin-token-file admin.token
   stateworth serve models/ --workers 2 --metrics-port 9464
+  stateworth serve models/ --admin-open     # local development: loads without a token
 """
 
 
@@ -37,7 +41,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--tls-cert", help="PEM certificate chain file (with --tls-key: serve TLS)")
     p.add_argument("--tls-key", help="PEM private key file")
     p.add_argument("--token-file", help="file holding the bearer token query calls must send")
-    p.add_argument("--admin-token-file", help="file holding the bearer token admin calls (loads) must send")
+    p.add_argument("--admin-token-file", help="file holding the bearer token admin calls (loads) must send; "
+                   "without it admin calls are off")
+    p.add_argument("--admin-open", action="store_true",
+                   help="allow admin calls without a token (local development; loopback hosts only)")
     p.add_argument("--threads", type=int, default=16, help="threads answering calls (default 16; per worker)")
     p.add_argument("--workers", type=int, default=1,
                    help="server processes sharing the port (default 1; one per core for throughput)")
@@ -66,6 +73,7 @@ def run(args: argparse.Namespace) -> int:
     from stateworth.errors import QueryError
     from stateworth.server import ServerConfig, read_secret
     from stateworth.server import run as serve
+    from stateworth.server.app import exit_bounded
     from stateworth.server.logs import setup
 
     for opt in ("threads", "max_batch", "max_concurrent", "work_workers", "workers"):
@@ -84,14 +92,15 @@ def run(args: argparse.Namespace) -> int:
         logging.getLogger("stateworth.server.access").setLevel(logging.WARNING)
     config = ServerConfig(model_dir=args.model_dir, host=args.host, port=args.port, tls_cert=args.tls_cert,
                           tls_key=args.tls_key, token=read_secret(args.token_file, "token"),
-                          admin_token=read_secret(args.admin_token_file, "admin token"), threads=args.threads,
+                          admin_token=read_secret(args.admin_token_file, "admin token"),
+                          admin_open=args.admin_open, threads=args.threads,
                           max_concurrent=args.max_concurrent, max_message_bytes=int(args.max_message_mb * 2**20),
                           max_batch=args.max_batch, work_workers=args.work_workers, work_queue=args.work_queue,
                           work_seconds=args.work_seconds, drain_seconds=args.drain_seconds,
                           metrics_host=args.metrics_host, metrics_port=args.metrics_port,
                           reflection=not args.no_reflection, worker_index=args.worker_index,
                           worker_port=args.worker_port)
-    return serve(config)
+    return exit_bounded(serve(config))
 
 
 #: options passed on to every worker as they were given (flag, attribute)
@@ -110,8 +119,15 @@ def _supervise(args: argparse.Namespace) -> int:
     from stateworth.server import ConfigError, read_secret
     from stateworth.server.supervisor import run_supervised
 
+    from stateworth.server.app import LOOPBACK
+
     read_secret(args.token_file, "token")
     read_secret(args.admin_token_file, "admin token")
+    if args.admin_open and args.admin_token_file:
+        raise ConfigError("--admin-open and --admin-token-file contradict each other; give one", where="--admin-open")
+    if args.admin_open and args.host not in LOOPBACK:
+        raise ConfigError(f"--admin-open is for local development on loopback; on {args.host} give "
+                          "--admin-token-file instead", where="--admin-open")
     if bool(args.tls_cert) != bool(args.tls_key):
         raise ConfigError("TLS needs both --tls-cert and --tls-key", where="--tls-cert/--tls-key")
     for f in (args.tls_cert, args.tls_key):
@@ -133,6 +149,8 @@ def _supervise(args: argparse.Namespace) -> int:
             out.append("--no-reflection")
         if args.no_access_log:
             out.append("--no-access-log")
+        if args.admin_open:
+            out.append("--admin-open")
         return out
 
     if args.worker_ports < 0 or args.worker_ports + args.workers > 65536:

@@ -25,13 +25,15 @@ _sym_db = _symbol_database.Default()
 from stateworth.v1 import model_pb2 as stateworth_dot_v1_dot_model__pb2
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n!stateworth/v1/admin_service.proto\x12\rstateworth.v1\x1a\x19stateworth/v1/model.proto\"$\n\x10LoadModelRequest\x12\x10\n\x08\x61rtifact\x18\x01 \x01(\t\"Q\n\x11LoadModelResponse\x12*\n\x05model\x18\x01 \x01(\x0b\x32\x1b.stateworth.v1.ModelVersion\x12\x10\n\x08replaced\x18\x02 \x01(\x08\"\x15\n\x13ReloadModelsRequest\"\x84\x01\n\x14ReloadModelsResponse\x12+\n\x06models\x18\x01 \x03(\x0b\x32\x1b.stateworth.v1.ModelVersion\x12\x14\n\x0cloaded_count\x18\x02 \x01(\x05\x12\x12\n\nkept_count\x18\x03 \x01(\x05\x12\x15\n\rdropped_count\x18\x04 \x01(\x05\x32\xbc\x01\n\x11ModelAdminService\x12N\n\tLoadModel\x12\x1f.stateworth.v1.LoadModelRequest\x1a .stateworth.v1.LoadModelResponse\x12W\n\x0cReloadModels\x12\".stateworth.v1.ReloadModelsRequest\x1a#.stateworth.v1.ReloadModelsResponseb\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n!stateworth/v1/admin_service.proto\x12\rstateworth.v1\x1a\x19stateworth/v1/model.proto\"$\n\x10LoadModelRequest\x12\x10\n\x08\x61rtifact\x18\x01 \x01(\t\"Q\n\x11LoadModelResponse\x12*\n\x05model\x18\x01 \x01(\x0b\x32\x1b.stateworth.v1.ModelVersion\x12\x10\n\x08replaced\x18\x02 \x01(\x08\"\x15\n\x13ReloadModelsRequest\"\xcf\x01\n\x14ReloadModelsResponse\x12+\n\x06models\x18\x01 \x03(\x0b\x32\x1b.stateworth.v1.ModelVersion\x12\x14\n\x0cloaded_count\x18\x02 \x01(\x05\x12\x12\n\nkept_count\x18\x03 \x01(\x05\x12\x15\n\rdropped_count\x18\x04 \x01(\x05\x12\x33\n\x08outcomes\x18\x05 \x03(\x0b\x32!.stateworth.v1.ModelFolderOutcome\x12\x14\n\x0c\x66\x61iled_count\x18\x06 \x01(\x05\"\x81\x01\n\x12ModelFolderOutcome\x12\x10\n\x08\x61rtifact\x18\x01 \x01(\t\x12+\n\x06result\x18\x02 \x01(\x0e\x32\x1b.stateworth.v1.ReloadResult\x12\x0c\n\x04name\x18\x03 \x01(\t\x12\x0f\n\x07version\x18\x04 \x01(\t\x12\r\n\x05\x65rror\x18\x05 \x01(\t*\x94\x01\n\x0cReloadResult\x12\x1d\n\x19RELOAD_RESULT_UNSPECIFIED\x10\x00\x12\x18\n\x14RELOAD_RESULT_LOADED\x10\x01\x12\x16\n\x12RELOAD_RESULT_KEPT\x10\x02\x12\x18\n\x14RELOAD_RESULT_FAILED\x10\x03\x12\x19\n\x15RELOAD_RESULT_REMOVED\x10\x04\x32\xbc\x01\n\x11ModelAdminService\x12N\n\tLoadModel\x12\x1f.stateworth.v1.LoadModelRequest\x1a .stateworth.v1.LoadModelResponse\x12W\n\x0cReloadModels\x12\".stateworth.v1.ReloadModelsRequest\x1a#.stateworth.v1.ReloadModelsResponseb\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
 _builder.BuildTopDescriptorsAndMessages(DESCRIPTOR, 'stateworth.v1.admin_service_pb2', _globals)
 if not _descriptor._USE_C_DESCRIPTORS:
   DESCRIPTOR._loaded_options = None
+  _globals['_RELOADRESULT']._serialized_start=566
+  _globals['_RELOADRESULT']._serialized_end=714
   _globals['_LOADMODELREQUEST']._serialized_start=79
   _globals['_LOADMODELREQUEST']._serialized_end=115
   _globals['_LOADMODELRESPONSE']._serialized_start=117
@@ -39,7 +41,9 @@ if not _descriptor._USE_C_DESCRIPTORS:
   _globals['_RELOADMODELSREQUEST']._serialized_start=200
   _globals['_RELOADMODELSREQUEST']._serialized_end=221
   _globals['_RELOADMODELSRESPONSE']._serialized_start=224
-  _globals['_RELOADMODELSRESPONSE']._serialized_end=356
-  _globals['_MODELADMINSERVICE']._serialized_start=359
-  _globals['_MODELADMINSERVICE']._serialized_end=547
+  _globals['_RELOADMODELSRESPONSE']._serialized_end=431
+  _globals['_MODELFOLDEROUTCOME']._serialized_start=434
+  _globals['_MODELFOLDEROUTCOME']._serialized_end=563
+  _globals['_MODELADMINSERVICE']._serialized_start=717
+  _globals['_MODELADMINSERVICE']._serialized_end=905
 # @@protoc_insertion_point(module_scope)

@@ -27,8 +27,8 @@ if _version_not_supported:
 
 class ModelAdminServiceStub:
     """Loads and reloads models. Every load builds and solves off to the side and swaps in
-    atomically; calls in flight finish on the version they started with; a failed load leaves
-    the serving models untouched and says why.
+    atomically; calls in flight finish on the version they started with; a model folder that
+    cannot be loaded keeps serving the version it had, and the answer says why.
     """
 
     def __init__(self, channel):
@@ -51,8 +51,8 @@ class ModelAdminServiceStub:
 
 class ModelAdminServiceServicer:
     """Loads and reloads models. Every load builds and solves off to the side and swaps in
-    atomically; calls in flight finish on the version they started with; a failed load leaves
-    the serving models untouched and says why.
+    atomically; calls in flight finish on the version they started with; a model folder that
+    cannot be loaded keeps serving the version it had, and the answer says why.
     """
 
     def LoadModel(self, request, context):
@@ -63,7 +63,9 @@ class ModelAdminServiceServicer:
         raise NotImplementedError('Method not implemented!')
 
     def ReloadModels(self, request, context):
-        """Rescans the whole model directory and serves exactly what it holds.
+        """Rescans the whole model directory: loads what changed, keeps what did not, keeps serving
+        the previous version of a folder that cannot be loaded, and stops serving folders that are
+        gone. The answer lists the outcome of every model folder.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
@@ -92,8 +94,8 @@ def add_ModelAdminServiceServicer_to_server(servicer, server):
  # This class is part of an EXPERIMENTAL API.
 class ModelAdminService:
     """Loads and reloads models. Every load builds and solves off to the side and swaps in
-    atomically; calls in flight finish on the version they started with; a failed load leaves
-    the serving models untouched and says why.
+    atomically; calls in flight finish on the version they started with; a model folder that
+    cannot be loaded keeps serving the version it had, and the answer says why.
     """
 
     @staticmethod
