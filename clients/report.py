@@ -720,6 +720,9 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
         if entries and "report.html" not in entries:
             raise ArtifactError("exists, is not empty and holds no earlier report; pick a new directory",
                                 where=str(out_dir))
+    if model_dir.is_dir():
+        from stateworth.rules.artifact import model_files
+        model_dir = model_files(model_dir)  # one version's files, even if a new one is published meanwhile
     if valuer is None:
         from stateworth.clients.commands._common import load_valuer
         valuer = load_valuer(str(model_dir))

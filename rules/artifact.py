@@ -367,8 +367,10 @@ def _writing_dir(parent: Path, prefix: str) -> Iterator[Path]:
     tmp = Path(tempfile.mkdtemp(prefix=prefix, dir=parent))
     fd = None
     try:
-        fd = os.open(tmp / _WRITING, os.O_RDWR | os.O_CREAT | getattr(os, "O_CLOEXEC", 0), 0o666 & ~_umask())
+        # locked under another name first, then renamed: a cleaner never finds it unlocked
+        fd = os.open(tmp / f"{_WRITING}.new", os.O_RDWR | os.O_CREAT | getattr(os, "O_CLOEXEC", 0), 0o666 & ~_umask())
         fcntl.flock(fd, fcntl.LOCK_EX)
+        os.rename(tmp / f"{_WRITING}.new", tmp / _WRITING)
         tmp.chmod(0o777 & ~_umask())  # mkdtemp makes it private; model folders are meant to be shared
         yield tmp
     except BaseException:

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import hmac
 import logging
+import threading
 import time
 from typing import Callable
 
@@ -90,6 +91,29 @@ def _checked(requests):
         yield r
 
 
+#: a caller gone this close to its deadline is taken to have run out of time: its own timer fires
+#: (and it cancels) a little before the server's copy of the deadline, which starts on arrival
+DEADLINE_SLACK_SECONDS = 0.5
+
+
+def _gone_when_closed(context) -> grpc.StatusCode | None:
+    """After gRPC closed a call: CANCELLED or DEADLINE_EXCEEDED when the close says the call was
+    cancelled (by its caller, or by its deadline), else None. grpcio keeps that verdict on the
+    context's private state (``client == "cancelled"``); without it, fall back on
+    :func:`gone_code`."""
+    client = getattr(getattr(context, "_state", None), "client", None)
+    if client is None:
+        return gone_code(context)
+    if client != "cancelled":
+        return None
+    try:
+        remaining = context.time_remaining()
+    except Exception:  # noqa: BLE001
+        remaining = None
+    late = remaining is not None and remaining <= DEADLINE_SLACK_SECONDS
+    return grpc.StatusCode.DEADLINE_EXCEEDED if late else grpc.StatusCode.CANCELLED
+
+
 def gone_code(context) -> grpc.StatusCode | None:
     """CANCELLED or DEADLINE_EXCEEDED when the caller is gone (cancelled the call, or its
     deadline passed), else None."""
@@ -99,7 +123,8 @@ def gone_code(context) -> grpc.StatusCode | None:
         remaining = context.time_remaining()
     except Exception:  # noqa: BLE001 - a context without these (tests' fakes): not gone
         return None
-    return grpc.StatusCode.DEADLINE_EXCEEDED if remaining is not None and remaining <= 0 else grpc.StatusCode.CANCELLED
+    late = remaining is not None and remaining <= DEADLINE_SLACK_SECONDS
+    return grpc.StatusCode.DEADLINE_EXCEEDED if late else grpc.StatusCode.CANCELLED
 
 
 def _eq(a: str | None, b: str | None) -> bool:
@@ -211,11 +236,14 @@ class CallInterceptor(grpc.ServerInterceptor):
         observe = self.metrics.observe
         undecodable = rich_status(grpc.StatusCode.INVALID_ARGUMENT, UNDECODABLE, "request")
 
-        def finish(context, t0: float, failed: BaseException | None) -> None:
-            dt = time.perf_counter() - t0
-            code = gone_code(context)
+        def finish(context, t0: float, failed: BaseException | None, dt: float | None = None,
+                   closed: bool = False) -> None:
+            """The access line and metrics of a finished call. ``closed``: gRPC has closed the
+            call (its close says whether the caller cancelled); else the handler just ended."""
+            dt = time.perf_counter() - t0 if dt is None else dt
+            code = context.code() if hasattr(context, "code") else None
             if code is None:
-                code = context.code() if hasattr(context, "code") else None
+                code = _gone_when_closed(context) if closed else gone_code(context)
             if code is None:
                 code = grpc.StatusCode.UNKNOWN if failed is not None else grpc.StatusCode.OK
             name = code.name if isinstance(code, grpc.StatusCode) else str(code)
@@ -236,13 +264,40 @@ class CallInterceptor(grpc.ServerInterceptor):
                 context.abort_with_status(undecodable)
             return request
 
+        def later(context, t0: float) -> Callable[[BaseException | None], None]:
+            """For streams: the access line once both the handler has ended and gRPC has closed
+            the call, whichever comes last. A caller that cancels a stream can look, to the
+            handler, like one that closed its side normally; only the close tells them apart."""
+            lock = threading.Lock()
+            state: dict = {"left": 2, "failed": None, "dt": None}
+
+            def step() -> None:
+                with lock:
+                    state["left"] -= 1
+                    last = state["left"] == 0
+                if last:
+                    finish(context, t0, state["failed"], state["dt"], closed=True)
+
+            if not context.add_callback(step):  # closed already
+                step()
+
+            def ended(failed: BaseException | None) -> None:
+                state["failed"], state["dt"] = failed, time.perf_counter() - t0
+                step()
+            return ended
+
         def wrap(fn, streaming):
-            if streaming:
+            if streaming or streaming_request:
                 def gen(request, context):
                     t0 = time.perf_counter()
+                    ended = later(context, t0)
                     failed = None
                     try:
-                        yield from fn(prepare(request, context), context)
+                        out = fn(prepare(request, context), context)
+                        if streaming:
+                            yield from out
+                        else:
+                            return out
                     except UndecodableRequest as e:  # a handler that did not turn it into a status
                         failed = e
                         _note_field(context)
@@ -251,8 +306,18 @@ class CallInterceptor(grpc.ServerInterceptor):
                         failed = e
                         raise
                     finally:
-                        finish(context, t0, failed)
-                return gen
+                        ended(failed)
+                if streaming:
+                    return gen
+
+                def one(request, context):  # a stream of requests, one response
+                    g = gen(request, context)
+                    try:
+                        next(g)
+                    except StopIteration as stop:
+                        return stop.value
+                    raise AssertionError("unreachable")  # pragma: no cover
+                return one
 
             def call(request, context):
                 t0 = time.perf_counter()

@@ -360,6 +360,9 @@ class ValuationServicer(vgrpc.ValuationServiceServicer):
         from stateworth.valuation import readout
 
         snap = self.store.snapshot
+        if request.seed < 0:
+            raise invalid(f"seed must be 0 or more (got {request.seed}); it picks the pairing of the two arms' draws",
+                          "seed")
         if not request.control_version:
             raise invalid("control_version is required (the version fitted on the control arm)", "control_version")
         if not request.treatment_version:
@@ -368,9 +371,6 @@ class ValuationServicer(vgrpc.ValuationServiceServicer):
         control = snap.resolve(request.name, request.control_version, version_field="control_version")
         treatment = snap.resolve(request.name, request.treatment_version, version_field="treatment_version")
         _note(context, model=control.name, version=f"{control.version}..{treatment.version}")
-        if request.seed < 0:
-            raise invalid(f"seed must be 0 or more (got {request.seed}); it picks the pairing of the two arms' draws",
-                          "seed")
         stream = cv.stream_of(control, request.stream)
         level = cv.level_of(request, 0.9)
         w = cv.weights(control.valuer, request.cohort, "cohort", self.limits.max_batch)

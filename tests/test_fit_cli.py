@@ -8,7 +8,7 @@ from pathlib import Path
 import pandas as pd
 
 from stateworth.clients.cli import main
-from stateworth.rules import load_model
+from stateworth.rules import load_model, model_files
 
 SPEC = str(Path(__file__).parent / "data" / "mini_fitness.toml")
 
@@ -25,8 +25,10 @@ def test_simulate_then_fit(tmp_path, capsys):
     model, extra = load_model(out)
     assert model.draws["status"].shape[0] == 5
     assert {"sensitivity.size_low.table.status", "sensitivity.size_high.table.status"} <= set(extra)
-    diag = json.loads((out / "diagnostics.json").read_text())
-    assert diag["version"] == model.version and (out / "diagnostics.txt").is_file()
+    files = model_files(out)  # the current version's folder: out/versions/<version>-<stamp>
+    assert files.parent.name == "versions" and files.name.startswith(model.version)
+    diag = json.loads((files / "diagnostics.json").read_text())
+    assert diag["version"] == model.version and (files / "diagnostics.txt").is_file()
     # the same inputs give the same model (content hash)
     out2 = tmp_path / "model2"
     assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out2), "--draws", "5",

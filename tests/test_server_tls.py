@@ -117,3 +117,36 @@ def test_each_refused_call_has_one_access_line_and_the_same_handler_serves_again
     time.sleep(0.2)  # a doubled line would arrive by now
     codes = [e["code"] for e in _rpc_lines(srv, method)[before:]]
     assert codes == ["UNAUTHENTICATED", "OK"] * 3
+
+
+def test_a_token_must_match_exactly(secure):
+    srv, cert = secure
+    # (gRPC itself refuses header values that end in white space, so padding goes in front)
+    for padded in (" query-secret-1", "   query-secret-1"):
+        with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token=padded) as c:
+            with pytest.raises(cl.Unauthenticated):
+                c.list_models()
+    with cl.Client(f"localhost:{srv.port}", tls_ca=cert, token="query-secret-1",
+                   admin_token=" admin-secret-2") as c:
+        with pytest.raises(cl.Unauthenticated):
+            c.reload_models()
+
+
+def test_tls_beyond_loopback_without_tokens_is_warned_about(tmp_path):
+    # 127.0.0.2 is a loopback address of the machine that the server does not treat as loopback
+    # (it names only 127.0.0.1, ::1 and localhost), so it stands for a public address here
+    cert, key = _self_signed(tmp_path)
+    models = tmp_path / "models"
+    models.mkdir()
+    srv = ServerProcess(models, "--host", "127.0.0.2", "--tls-cert", str(cert), "--tls-key", str(key))
+    try:
+        warned = srv.wait_for("tls_without_tokens", timeout=60)
+        assert warned["level"] == "warning" and warned["host"] == "127.0.0.2"
+    finally:
+        assert srv.stop() == 0
+    quiet = ServerProcess(models, "--tls-cert", str(cert), "--tls-key", str(key))  # on loopback: no warning
+    try:
+        quiet.wait_for("serving")
+    finally:
+        assert quiet.stop() == 0
+    assert not any(e.get("event") == "tls_without_tokens" for e in quiet.events)

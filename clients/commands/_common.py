@@ -65,12 +65,16 @@ def load_valuer(path: str, *, draws: bool = True, quiet: bool = False):
     from stateworth.clients.commands.solve import load_any
     from stateworth.valuation import Valuer
 
+    from stateworth.rules.artifact import MANIFEST, model_files
+
     p = Path(path)
-    stamp = p / "manifest.json" if p.is_dir() else p
+    if p.is_dir():
+        p = model_files(p)  # the current version's own folder: a new version is a new key
+    stamp = p / MANIFEST if p.is_dir() else p
     key = (str(p.resolve()), stamp.stat().st_mtime_ns if stamp.exists() else None, bool(draws))
     if key[1] is not None and key in _VALUERS:
         return _VALUERS[key]
-    model = load_any(path)
+    model = load_any(str(p))
     if not quiet and sys.stderr.isatty():
         print(f"solving {model.name} ({model.n_states:,} states, {len(model.rewards)} streams"
               f"{', with posterior draws' if model.draws and draws else ''}) ...", file=sys.stderr)
