@@ -124,7 +124,8 @@ def period_label(p: int) -> str:
 
 def parse_period(text: str, where: str) -> int:
     if not re.match(PERIOD_RE, text or ""):
-        raise PanelError(f"period '{text}' is not YYYY-MM (e.g. 2024-01)", where=where)
+        # the value itself is not repeated: a misplaced column could hold account identifiers
+        raise PanelError("the period is not YYYY-MM (e.g. 2024-01)", where=where)
     return int(text[:4]) * 12 + int(text[5:7]) - 1
 
 
@@ -162,7 +163,8 @@ def _source(path: str, con) -> tuple[str, str]:
             con.execute(f"CREATE OR REPLACE TEMP TABLE {name} AS SELECT row_number() OVER () AS _row, * "
                         f"FROM read_csv({lit}, header = true, all_varchar = true)")
         except duckdb.Error as e:
-            raise PanelError(f"cannot be read as CSV ({str(e).splitlines()[0]})", where=str(path)) from None
+            raise PanelError(f"cannot be read as CSV ({_reader_error(e)}); check the delimiter, the quoting and that "
+                             "every row has as many fields as the header row", where=str(path)) from None
         finally:
             con.execute(f"SET preserve_insertion_order = {'true' if order else 'false'}")
         return name, "csv"
@@ -175,8 +177,36 @@ def _columns(con, rel: str, path: str) -> dict[str, str]:
     try:
         desc = con.execute(f"DESCRIBE SELECT * FROM {rel}").fetchall()
     except duckdb.Error as e:
-        raise PanelError(f"cannot be read as a table ({str(e).splitlines()[0]})", where=path) from None
+        raise PanelError(f"cannot be read as a table ({_reader_error(e)})", where=path) from None
     return {r[0]: r[1] for r in desc}
+
+
+def _reader_error(e: Exception) -> str:
+    """What the file reader objected to, without its text: the engine quotes lines of the file,
+    which may hold account identifiers. Keeps the kind of error and the line number."""
+    text = str(e)
+    kind = text.split(":", 1)[0].strip() if ":" in text.splitlines()[0] else "unreadable"
+    line = re.search(r"\bline:?\s*(\d+)", text, flags=re.IGNORECASE)
+    why = "; the file is not UTF-8 text" if "utf-8" in text.lower() or "unicode" in text.lower() else ""
+    return f"{kind[:60]}" + (f" at line {line.group(1)}" if line else "") + why
+
+
+def _header_summary(have: list[str], expected: set[str]) -> str:
+    """The header row described without its unknown names (a file without a header row has
+    its first data row there): the count, the expected names found, the positions of others."""
+    known = [c for c in have if c in expected]
+    other = [i + 1 for i, c in enumerate(have) if c not in expected]
+    parts = [f"the header row has {len(have)} column(s)"]
+    if known:
+        parts.append(f"named {', '.join(known)}")
+    if other:
+        shown = ", ".join(map(str, other[:12])) + (", ..." if len(other) > 12 else "")
+        parts.append(f"{len(other)} with other names at position(s) {shown} (not shown)")
+    text = "; ".join(parts)
+    if not known:
+        text += ("; is the header row missing? The first line must name the columns "
+                 "(values of a first data row are never printed)")
+    return text
 
 
 def _q(name: str) -> str:
@@ -206,15 +236,16 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
     need = ["account", "period"] + list(lay.observed) + list(lay.covariates)
     missing = [c for c in need if c not in cols]
     if missing:
-        have = ", ".join(c for c in cols if c != "_row")
-        return [(path, f"missing required column(s) {', '.join(missing)}; the file has {have} "
+        have = [c for c in cols if c != "_row"]
+        expected = set(need) | {"revenue"}
+        return [(path, f"missing required column(s) {', '.join(missing)}; {_header_summary(have, expected)} "
                        f"(see README 'Panel format')")], con
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     probs: list[tuple[str, str]] = []
 
-    checks: list[tuple[str, str, object]] = []
+    checks: list[tuple[str, str, str]] = []
 
-    def example(cond: str, column: str, msg) -> None:
+    def example(cond: str, column: str, msg: str) -> None:
         checks.append((cond, column, msg))
 
     def run_checks() -> None:
@@ -225,39 +256,40 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
         for (cond, column, msg), n in zip(checks, counts):
             if not n:
                 continue
-            row = _first(con, f"SELECT _row, CAST({_q(column)} AS VARCHAR) FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
+            # the row and column are named, the value never: it could be an account identifier
+            row = _first(con, f"SELECT _row FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
             more = f" ({n:,} rows in all)" if n > 1 else ""
-            probs.append((f"{path}: row {row[0]}, column {column}", msg(row[1]) + more))
+            probs.append((f"{path}: row {row[0]}, column {column}", msg + more))
         checks.clear()
 
     for c in ["account", "period"] + list(lay.observed):
-        example(f"{_q(c)} IS NULL", c, lambda v: "empty value; every row needs one")
+        example(f"{_q(c)} IS NULL", c, "empty value; every row needs one")
     per = _period_text(cols)
     example(f"{_q('period')} IS NOT NULL AND NOT regexp_matches({per}, '{PERIOD_RE}')", "period",
-            lambda v: f"period '{v}' is not YYYY-MM (e.g. 2024-01)")
+            "the period is not YYYY-MM (e.g. 2024-01)")
     for ax in lay.observed:
         lv = spec.axis_levels(ax)
         allowed = ", ".join(_lit(x) for x in lv)
         example(f"{_q(ax)} IS NOT NULL AND CAST({_q(ax)} AS VARCHAR) NOT IN ({allowed})", ax,
-                lambda v, ax=ax, lv=lv: f"'{v}' is not a level of {ax}; levels are {', '.join(lv)}")
+                f"not a level of {ax}; levels are {', '.join(lv)}")
     nm = lay.never_member
     example(f"CAST({_q(lay.status)} AS VARCHAR) = {_lit(nm)}", lay.status,
-            lambda v: f"'{nm}' rows found: people who never joined do not appear in a panel (their joining "
-                      f"comes from the market-size table); use a former-member level ({', '.join(lay.former_levels) or 'none declared'}) "
-                      "for accounts that lapsed")
+            f"'{nm}' rows found: people who never joined do not appear in a panel (their joining "
+            f"comes from the market-size table); use a former-member level ({', '.join(lay.former_levels) or 'none declared'}) "
+            "for accounts that lapsed")
     for c in lay.covariates:
         if c in lay.categorical:
             example(f"{_q(c)} IS NULL OR TRIM(CAST({_q(c)} AS VARCHAR)) = ''", c,
-                    lambda v: "empty value; a categorical covariate needs a value on every row")
+                    "empty value; a categorical covariate needs a value on every row")
             continue
         example(f"{_q(c)} IS NULL OR TRY_CAST({_q(c)} AS DOUBLE) IS NULL OR NOT isfinite(TRY_CAST({_q(c)} AS DOUBLE))", c,
-                lambda v, c=c: f"covariate value '{v}' is not a finite number")
+                "the covariate value is not a finite number")
     if "revenue" in cols:
         example(f"{_q('revenue')} IS NOT NULL AND TRIM(CAST({_q('revenue')} AS VARCHAR)) <> '' AND "
                 f"TRY_CAST({_q('revenue')} AS DOUBLE) IS NULL", "revenue",
-                lambda v: f"revenue '{v}' is not a number (money per period, e.g. 29.0)")
+                "revenue is not a number (money per period, e.g. 29.0)")
         example(f"TRY_CAST({_q('revenue')} AS DOUBLE) < 0 OR NOT isfinite(TRY_CAST({_q('revenue')} AS DOUBLE))", "revenue",
-                lambda v: f"revenue {v} is negative or not finite; revenue is money received, >= 0")
+                "revenue is negative or not finite; revenue is money received, >= 0")
     run_checks()
     return probs, con
 
@@ -394,6 +426,9 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
                              "level", where=f"{path}: row {gap[0]}, column period")
         filled = fill_gaps(con, lay, base)
     n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
+    if not n:
+        raise PanelError("the panel has no data rows (a header row only, or an empty file); give one row per "
+                         "account per month", where=path)
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
                  p_max=int(pmax), filled=filled, has_revenue=has_rev, cov_levels=cov_levels)
 
@@ -478,8 +513,9 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     cols = _columns(con, rel, path)
     missing = [c for c in ("market", "size", "low", "high") if c not in cols]
     if missing:
+        have = [c for c in cols if c != "_row"]
         return [(path, f"missing required column(s) {', '.join(missing)}; columns are market, size, low, high "
-                       "and optionally period")]
+                       f"and optionally period; {_header_summary(have, {'market', 'size', 'low', 'high', 'period'})}")]
     con.execute(f"CREATE OR REPLACE TEMP VIEW mraw AS SELECT * FROM {rel}")
     by_period = "period" in cols
     rows = con.execute("SELECT _row, CAST(market AS VARCHAR), CAST(size AS VARCHAR), CAST(low AS VARCHAR), "
@@ -494,7 +530,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     for r, mk, *vals, per in rows:
         where = f"{path}: row {r}"
         if mk not in levels:
-            probs.append((f"{where}, column market", f"'{mk}' is not a level of {lay.market}; levels are {', '.join(levels)}"))
+            probs.append((f"{where}, column market", f"not a level of {lay.market}; levels are {', '.join(levels)}"))
             continue
         nums = []
         for name, v in zip(("size", "low", "high"), vals):
@@ -504,7 +540,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
                     raise ValueError
                 nums.append(x)
             except (TypeError, ValueError):
-                probs.append((f"{where}, column {name}", f"'{v}' is not a count >= 0 of addressable accounts"))
+                probs.append((f"{where}, column {name}", f"{name} is not a count >= 0 of addressable accounts"))
         if len(nums) < 3:
             continue
         s, lo, hi = nums

@@ -68,7 +68,38 @@ def test_unknown_level(spec, files):
     bad = df.copy()
     bad.loc[5, "engagement"] = "medium"
     e = _err(spec, _write(bad, d, "level.csv"))
-    assert "level.csv: row 6, column engagement" in str(e) and "'medium'" in str(e) and "low, high" in str(e)
+    assert "level.csv: row 6, column engagement" in str(e) and "low, high" in str(e)
+    assert "medium" not in str(e)  # the row and column are named, the value never (it could be an identifier)
+
+
+def test_a_file_without_a_header_row_is_described_by_positions_and_counts(spec, files):
+    df, _, d = files
+    path = d / "nohead.csv"
+    df.to_csv(path, index=False, header=False)
+    e = _err(spec, str(path))
+    msg = str(e)
+    assert "missing required column(s) account, period" in msg
+    assert "the header row has 6 column(s); 6 with other names at position(s) 1, 2, 3, 4, 5, 6 (not shown)" in msg
+    assert "is the header row missing?" in msg
+    assert df.iloc[0]["period"] not in msg  # the first data row, taken for a header, is not printed
+    named = d / "renamed.csv"
+    df.rename(columns={"engagement": "band", "period": "month"}).to_csv(named, index=False)
+    msg = str(_err(spec, str(named)))
+    assert "missing required column(s) period, engagement" in msg
+    assert "named account, market, status, revenue; 2 with other names at position(s) 2, 5 (not shown)" in msg
+
+
+@pytest.mark.parametrize("kind", ["csv", "parquet"])
+def test_a_panel_without_data_rows_is_a_user_error(spec, files, kind):
+    df, _, d = files
+    path = d / f"empty.{kind}"
+    if kind == "csv":
+        df.iloc[:0].to_csv(path, index=False)
+    else:
+        df.iloc[:0].to_parquet(path)
+    e = _err(spec, str(path))
+    assert f"empty.{kind}" in str(e) and "no data rows" in str(e)
+    assert check_panel(spec, str(path), None) == [str(e)]
 
 
 def test_never_member_rows_refused(spec, files):
