@@ -486,8 +486,10 @@ def _prune(folder: Path, keep: int = KEEP_VERSIONS) -> list[str]:
 
 def _remove_flat(folder: Path) -> list[str]:
     """Files of the flat layout left in a folder whose ``current`` link now rules (its first
-    versioned write): everything but ``versions``, ``current`` and hidden files."""
-    if not os.path.lexists(folder / CURRENT):
+    versioned write): when a flat manifest or arrays file is still there, everything but
+    ``versions``, ``current`` and hidden files (a flat folder held its artifact only)."""
+    if not os.path.lexists(folder / CURRENT) or not (os.path.lexists(folder / MANIFEST)
+                                                     or os.path.lexists(folder / ARRAYS)):
         return []
     gone = []
     for p in folder.iterdir():
@@ -714,7 +716,7 @@ def _untidy(folder: Path) -> bool:
     names = [p.name for p in folder.iterdir()]
     if any(n.startswith(f".{CURRENT}.tmp-") or n == _WRITING for n in names):
         return True
-    if CURRENT in names and any(not n.startswith(".") and n not in (CURRENT, VERSIONS) for n in names):
+    if CURRENT in names and (MANIFEST in names or ARRAYS in names):
         return True
     if vdir.is_dir():
         vs = [p.name for p in vdir.iterdir()]

@@ -8,8 +8,12 @@ flight finishes on the version it started with however many reloads happen meanw
 A (re)load builds the next snapshot off to the side (artifacts whose content hash is already
 served are reused, new ones are loaded, verified and solved) and only then replaces the
 reference, one assignment under the reload lock: readers see the old snapshot or the new one,
-never a mixture. Any failure leaves the current snapshot untouched and is reported with the
-artifact and the reason.
+never a mixture. Model folders are read through :func:`stateworth.rules.artifact.model_files`
+(one version's files, whatever a writer publishes meanwhile) and never outside the model
+directory. A reload answers an :class:`Outcome` per folder: a folder that cannot be loaded
+keeps serving the version it had (its outcome says why), a folder that is gone is no longer
+served. A single load (``load_one``) that fails leaves the snapshot untouched. Before scanning,
+what interrupted writes left is removed (or moved back), one log line each.
 
 The default version of a model (the one that answers requests that pin none) is the version
 whose artifact was written last (manifest modification time; ties by artifact directory name).

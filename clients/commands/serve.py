@@ -100,7 +100,8 @@ def run(args: argparse.Namespace) -> int:
                           metrics_host=args.metrics_host, metrics_port=args.metrics_port,
                           reflection=not args.no_reflection, worker_index=args.worker_index,
                           worker_port=args.worker_port)
-    return exit_bounded(serve(config))
+    exit_bounded(serve(config))  # ends the process (see its docstring)
+    return 0  # pragma: no cover
 
 
 #: options passed on to every worker as they were given (flag, attribute)
