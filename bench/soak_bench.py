@@ -16,9 +16,10 @@ folders; this process, for ``--minutes`` (default 30):
 
 Checked on every answer: the version it names is one that was written, and every value equals
 what the valuation library computes in this process for that version (batches and streams value
-by value, so an answer mixing two versions cannot pass). Counted: calls, calls failed (a failure
-within ``--kill-window`` seconds of a kill, UNAVAILABLE or CANCELLED, is counted as the kill's
-own; any other is a failure outside the kills), answers of a wrong version, reload outcomes.
+by value, so an answer mixing two versions cannot pass). Counted: calls, calls failed (an
+UNAVAILABLE or CANCELLED failure of a call in flight at a kill, or started within
+``--kill-window`` seconds after it, is the kill's own; any other is a failure outside the
+kills), answers of a wrong version, reload outcomes.
 Memory: resident memory of the supervisor and its workers summed, sampled every 30 s. A
 worker's memory climbs for its first few minutes (each query path compiles once, each thread
 that runs a solve gets its own allocator arena) and then levels off, so kills start only after
@@ -193,10 +194,11 @@ class Tally:
             self.latency.append(seconds)
             self.versions[version] = self.versions.get(version, 0) + 1
 
-    def fail(self, kind: str, code: str, message: str, at: float) -> None:
+    def fail(self, kind: str, code: str, message: str, at: float, ended: float) -> None:
         with self.lock:
             self.calls[kind] = self.calls.get(kind, 0) + 1
-            self.failures.append({"kind": kind, "code": code, "at_s": round(at, 3), "message": message[:200]})
+            self.failures.append({"kind": kind, "code": code, "at_s": round(at, 3), "ended_s": round(ended, 3),
+                                  "message": message[:200]})
 
     def bad(self, kind: str, version: str, why: str, at: float) -> None:
         with self.lock:
@@ -306,9 +308,9 @@ def caller(k: int, target: str, token: str, model: str, model_b: str, probes: li
                     version = r.version
                 tally.ok(kind, time.perf_counter() - s, version)
             except CallError as e:
-                tally.fail(kind, e.code.name, str(e), at)
+                tally.fail(kind, e.code.name, str(e), at, time.monotonic() - t0)
             except Exception as e:  # noqa: BLE001 - any failure is counted, the run goes on
-                tally.fail(kind, e.__class__.__name__, str(e), at)
+                tally.fail(kind, e.__class__.__name__, str(e), at, time.monotonic() - t0)
 
 
 #: probe number -> flat state index (filled once by :func:`run`)
@@ -484,8 +486,9 @@ def run(args: argparse.Namespace) -> dict:
     stopped = next((e for e in reversed(srv.poll()) if e.get("event") == "stopped" and "worker" not in e), {})
 
     def at_kill(f: dict) -> bool:
+        """A call in flight when a worker was killed, or started within the window after."""
         return f["code"] in ("UNAVAILABLE", "CANCELLED") and any(
-            0 <= f["at_s"] - k["at_s"] <= args.kill_window for k in kills)
+            f["at_s"] <= k["at_s"] + args.kill_window and f["ended_s"] >= k["at_s"] for k in kills)
 
     own = [f for f in tally.failures if at_kill(f)]
     outside = [f for f in tally.failures if not at_kill(f)]

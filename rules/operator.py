@@ -328,6 +328,18 @@ def _columns(f, x: jax.Array) -> jax.Array:
     return jax.lax.map(f, x.T).T
 
 
+@jax.jit
+def _mv_columns(op: "GridOperator", x: jax.Array) -> jax.Array:
+    """``op.mv`` of several columns called outside a trace, with the operator as an argument.
+    Called eagerly, ``lax.map`` would trace the apply with the operator's tables inside it as
+    constants into a computation that JAX keeps in its dispatch cache for good: every model
+    compiled in a process (the rewards apply P once) left its tables there, and a server
+    loading a new version every few seconds grew by about 2 MiB a version at 10^4 states
+    (bench/soak_bench.py). As an argument, the tables are not kept, and one compiled apply
+    serves every model of the same structure (the plan is compared by value)."""
+    return op.mv(x)
+
+
 def _apply(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
     return _columns(partial(_apply_single, plan, arrays), x)
 
@@ -351,6 +363,8 @@ class GridOperator:
         self.shape = (plan.size, plan.size)
 
     def mv(self, x: jax.Array) -> jax.Array:
+        if x.ndim == 2 and not isinstance(x, jax.core.Tracer):
+            return _mv_columns(self, x)
         if self.transposed:
             return _apply_transpose(self.plan, self.arrays, x)
         return _apply(self.plan, self.arrays, x)
