@@ -234,7 +234,8 @@ def flat(size: str = "large", seed: int = 0) -> tuple[dict, dict[str, np.ndarray
     use = np.zeros((S, U, U))
     use[:2] = np.eye(U)[[0] * U]
     use[2:] = _rows(rng, (3, U, U), np.full((3, U), 0.6), np.ones((U, U), dtype=bool))
-    affinity = _rows(rng, (A, D, A), np.full((A, D), 0.7), np.ones((A, A), dtype=bool))
+    # given ["affinity", "device"]: drawn as (device, affinity, affinity') and laid out in given order
+    affinity = np.transpose(_rows(rng, (D, A, A), np.full((D, A), 0.7), np.ones((A, A), dtype=bool)), (1, 0, 2))
     device = _rows(rng, (D, D), np.full(D, 0.9), np.ones((D, D), dtype=bool))
     return spec, {"status": tab, "usage": use, "affinity": affinity, "device": device}
 

@@ -255,7 +255,7 @@ def run_demo(output: str | Path = "demo-out", spec: str | Path | None = None, ac
     try:
         with step("solve every reward stream (I - beta P) V = r"):
             valuer = load_valuer(str(model_dir), quiet=True)
-            s = valuer.solution.stats()
+            s = valuer.solve_stats
             print(f"      {valuer.model.n_states:,} states, {s['method']}: {s['status']}, {s['iterations']} iterations, "
                   f"residual {s['residual']:.1e}; {valuer.n_draws} posterior draws solved in one batch")
             summary["solve"] = s

@@ -287,7 +287,7 @@ def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | 
     step()
     bar.close()
 
-    data["solve"] = valuer.solution.stats()
+    data["solve"] = valuer.solve_stats
     data["diagnostics"] = _clean(diagnostics) if diagnostics is not None else None
     data["assumptions"] = ASSUMPTIONS
     data["cautions"] = CAUTIONS

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from stateworth.rules.factors import Factor
-from stateworth.rules.counters import counter_flags
+from stateworth.rules.counters import counter_flags, counter_start  # noqa: F401  (counter_start re-exported)
 from stateworth.estimation.panel import Layout
 
 W = "PARTITION BY account ORDER BY p"
@@ -33,17 +33,6 @@ def _in(col: str, codes) -> str:
     if not codes:
         return "1 = 0"
     return f"{col} IN ({', '.join(str(int(c)) for c in codes)})"
-
-
-def counter_start(spec, axis: str) -> int:
-    """The counter level a never-member is taken to hold before joining: the cap when the
-    counter advances for never-members (they have been one for a long time), else 0."""
-    ax = spec.axes[axis]
-    size = len(spec.axis_levels(axis))
-    aw = ax.advance_while if ax.advance_while is not None else "always"
-    nm = spec.non_members[0]
-    adv = aw in ("non_member", "always") or (isinstance(aw, list) and nm in aw)
-    return size - 1 if adv else 0
 
 
 def counter_sql(spec, lay: Layout, axis: str, s: str, sp: str) -> tuple[str, str]:

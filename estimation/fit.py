@@ -20,7 +20,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
+from typing import Callable, Literal
 
 import numpy as np
 
@@ -167,15 +167,19 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
 
 
 def fit_to_dir(spec: Spec, panel_path, markets_path, out_dir, options: FitOptions = FitOptions(), *,
-               source: str = "<spec>", progress: bool = False) -> FitResult:
+               source: str = "<spec>", progress: bool = False,
+               before_publish: Callable[[FitResult, Path], None] | None = None) -> FitResult:
     """:func:`fit_panel`, then write the artifact (``diagnostics.json`` inside, and a readable
-    ``diagnostics.txt``) to ``out_dir``. Nothing is written if fitting fails."""
+    ``diagnostics.txt``) to ``out_dir``. ``before_publish(result, tmp)`` may add to the directory
+    before it appears (the command line stores the solved values there). Nothing is written if
+    fitting fails."""
     from stateworth.rules.artifact import save_model
 
     res = fit_panel(spec, panel_path, markets_path, options, source=source, progress=progress)
     # the readable summary goes in with the rest: a model directory appears whole or not at all
     save_model(res.model, out_dir, extra=res.extra, files={"diagnostics.json": res.diagnostics},
-               texts={"diagnostics.txt": summary_text(res.diagnostics) + "\n"})
+               texts={"diagnostics.txt": summary_text(res.diagnostics) + "\n"},
+               before_publish=None if before_publish is None else (lambda tmp: before_publish(res, tmp)))
     return res
 
 

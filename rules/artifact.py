@@ -15,7 +15,7 @@ import shutil
 import tempfile
 import zipfile
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -32,12 +32,14 @@ def _sha(a: np.ndarray) -> str:
 
 
 def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarray] | None = None,
-               files: dict[str, Any] | None = None, texts: dict[str, str] | None = None) -> Path:
+               files: dict[str, Any] | None = None, texts: dict[str, str] | None = None,
+               before_publish: Callable[[Path], None] | None = None) -> Path:
     """Write ``model`` to directory ``path`` atomically (replacing an existing artifact).
 
     ``extra`` arrays are stored beside the tables (e.g. sensitivity tables); ``files`` are extra
     JSON documents (e.g. ``diagnostics.json``), ``texts`` extra text files (``diagnostics.txt``):
-    all written before the directory appears."""
+    all written before the directory appears. ``before_publish(tmp)`` may add more to the
+    directory (stored solved values) before it appears."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     arrays: dict[str, np.ndarray] = {}
@@ -57,7 +59,7 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
         "n_states": model.n_states,
         "grid": model.grid.describe(),
         "factors": [{"axis": f.axis, "given": list(f.given), "shape": list(f.shape)} for f in model.factors],
-        "streams": list(model.rewards),
+        "streams": list(model.streams),
         "metadata": model.metadata,
         "arrays": {k: {"shape": list(v.shape), "dtype": str(v.dtype), "sha256": _sha(v)} for k, v in arrays.items()},
     }
@@ -69,6 +71,8 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
             (tmp / fname).write_text(json.dumps(doc, indent=2, sort_keys=True, default=str))
         for fname, text in (texts or {}).items():
             (tmp / fname).write_text(text, encoding="utf-8")
+        if before_publish is not None:
+            before_publish(tmp)
         # not sort_keys: the order of the spec's axes is meaningful (grid order, draw order)
         (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2))
         if path.exists():

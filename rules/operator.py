@@ -38,7 +38,6 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 import numpy as np
-import scipy.sparse as sp
 
 from stateworth import config
 from stateworth.rules.counters import counter_index
@@ -409,7 +408,7 @@ def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.
                   reuse_plan: bool = False) -> GridOperator:
     """The operator of ``tables`` on ``grid``; ``reuse_plan``: take the plan from a small cache of
     recent ones (for operators built again and again on the same spec object and grid)."""
-    config.float64()
+    config.use_jax()
     if reuse_plan:
         plan, index = _plan_for(spec, grid, factors)
     else:
@@ -418,61 +417,3 @@ def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.
     arrays = {f"table.{k}": plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64)) for k, v in tables.items()}
     arrays.update(index)
     return GridOperator(plan, arrays)
-
-
-def explicit_csr(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray],
-                 max_states: int = 3_000_000, chunk_entries: int = 4_000_000) -> sp.csr_matrix:
-    """P as a scipy CSR matrix, built by enumerating every (state, next random levels) pair.
-
-    Independent of the structured apply (it walks the draws forward), so it doubles as a
-    cross-check. Memory grows with the number of non-zeros; refused above ``max_states``."""
-    n = grid.size
-    if n > max_states:
-        from stateworth.errors import GridTooLargeError
-        raise GridTooLargeError(f"explicit matrix export is for grids up to {max_states:,} states; this one has {n:,}")
-    names = list(grid.names)
-    pos = {nm: i for i, nm in enumerate(names)}
-    kinds = {a.name: a.kind for a in grid.axes}
-    status = spec.status_axis
-    rnd = [f.axis for f in factors]
-    rsizes = [grid.axis(r).size for r in rnd]
-    K = int(np.prod(rsizes))
-    combos = [c.reshape(-1) for c in np.indices(rsizes)]  # next levels of random axes, (K,)
-    nxt = {r: combos[i][None, :] for i, r in enumerate(rnd)}
-    counters = {a.name: counter_index(spec, a.name) for a in grid.axes if a.kind == "counter"}
-    B = max(1, chunk_entries // K)
-    rows_all, cols_all, vals_all = [], [], []
-    for start in range(0, n, B):
-        flat = np.arange(start, min(n, start + B))
-        cur_codes = np.unravel_index(flat, grid.shape)
-        cur = {nm: cur_codes[i][:, None] for i, nm in enumerate(names)}
-        prob = np.ones((len(flat), K))
-        for f in factors:
-            idx = []
-            for g in f.given:
-                idx.append(nxt[g[5:]] if g.startswith("next.") else cur[g])
-            idx.append(nxt[f.axis])
-            prob = prob * tables[f.axis][tuple(np.broadcast_arrays(*idx))]
-        next_codes = []
-        for nm in names:
-            k = kinds[nm]
-            if k == "fixed":
-                next_codes.append(np.broadcast_to(cur[nm], prob.shape))
-            elif k == "cycle":
-                size = grid.axis(nm).size
-                next_codes.append(np.broadcast_to((cur[nm] + 1) % size, prob.shape))
-            elif k == "counter":
-                next_codes.append(counters[nm][cur[nm], cur[status], nxt[status]])
-            else:
-                next_codes.append(np.broadcast_to(nxt[nm], prob.shape))
-        col = np.ravel_multi_index([np.broadcast_to(c, prob.shape) for c in next_codes], grid.shape)
-        keep = prob > 0
-        rows_all.append(np.broadcast_to(flat[:, None], prob.shape)[keep])
-        cols_all.append(col[keep])
-        vals_all.append(prob[keep])
-    rows = np.concatenate(rows_all)
-    cols = np.concatenate(cols_all)
-    vals = np.concatenate(vals_all)
-    m = sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
-    m.sum_duplicates()
-    return m

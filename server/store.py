@@ -210,8 +210,15 @@ class ModelStore:
             if self._build is not None:
                 valuer = self._build(model)
             else:
+                # values stored with the model (by fit or solve) are served as they are; a stored
+                # solution that does not match its model refuses the model (StoredValuesError);
+                # a model without one is solved here
                 from stateworth.valuation import Valuer
-                valuer = Valuer.build(model)
+                from stateworth.valuation import stored
+                try:
+                    valuer = Valuer(stored.load(path, model))
+                except FileNotFoundError:
+                    valuer = Valuer.build(model)
         except StateworthError as e:
             raise LoadError(f"artifact '{path.name}' could not be loaded: {e}; the serving models are unchanged",
                             field="artifact") from None

@@ -167,7 +167,7 @@ def _onehot(layout: FrozenLayout, dtype) -> jax.Array:
 def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.Array:
     """``R2 P Q2`` restricted to moves that stay in the cluster: ``(blocks, K2, K2)`` (traceable:
     ``tables`` may be tracers, e.g. one posterior draw inside the batched draw solve)."""
-    config.float64()
+    config.use_jax()
     ops = [jnp.asarray(tables[a], dtype=jnp.float64) for a in layout.factor_axes]
     S = layout.grid_shape[layout.status_pos]
     ops += [jnp.asarray(np.array(m, dtype=np.float64).reshape(len(m), S, S)) for _, m in layout.masks]
@@ -244,7 +244,7 @@ class FrozenCoarse:
 def frozen_coarse(layout: FrozenLayout, tables: Mapping[str, jax.Array], beta, *, transpose: bool = False,
                   dtype=jnp.float64) -> FrozenCoarse:
     """The correction for ``I - beta P`` (or its transpose) with P's factor ``tables``."""
-    config.float64()
+    config.use_jax()
     from stateworth.solver.preconditioner import _coarse_inverse
 
     C = _frozen_matrix_jit(layout, dict(tables))

@@ -69,7 +69,7 @@ def local_devices(count: int):
 
 def shard_model(model, count: int) -> ShardPlan:
     """Pad ``model`` along its first fixed axis to a multiple of ``count`` and build the mesh."""
-    config.float64()
+    config.use_jax()
     from stateworth.rules import compile_model, parse_spec
 
     devices = local_devices(count)

@@ -42,7 +42,7 @@ class MatrixOperator:
     """
 
     def __init__(self, matrix: jax.Array) -> None:
-        config.float64()
+        config.use_jax()
         self.matrix = jnp.asarray(matrix, dtype=jnp.float64)
         self.shape = tuple(self.matrix.shape)  # type: ignore[assignment]
 
@@ -51,6 +51,11 @@ class MatrixOperator:
 
     def transpose(self) -> "MatrixOperator":
         return MatrixOperator(self.matrix.T)
+
+    def csr(self):
+        """The matrix as scipy CSR (for the host's sparse LU)."""
+        import scipy.sparse as sp
+        return sp.csr_matrix(np.asarray(self.matrix))
 
     def tree_flatten(self):
         return (self.matrix,), None
@@ -69,7 +74,7 @@ class SparseOperator:
     """
 
     def __init__(self, rows: jax.Array, cols: jax.Array, data: jax.Array, n: int) -> None:
-        config.float64()
+        config.use_jax()
         self.rows = jnp.asarray(rows, dtype=jnp.int32)
         self.cols = jnp.asarray(cols, dtype=jnp.int32)
         self.data = jnp.asarray(data, dtype=jnp.float64)
@@ -87,6 +92,12 @@ class SparseOperator:
 
     def transpose(self) -> "SparseOperator":
         return SparseOperator(self.cols, self.rows, self.data, self.n)
+
+    def csr(self):
+        """The matrix as scipy CSR (for the host's sparse LU)."""
+        import scipy.sparse as sp
+        return sp.csr_matrix((np.asarray(self.data), (np.asarray(self.rows), np.asarray(self.cols))),
+                             shape=(self.n, self.n))
 
     def tree_flatten(self):
         return (self.rows, self.cols, self.data), self.n

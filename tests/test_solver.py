@@ -59,7 +59,7 @@ def test_matches_scipy_spsolve(models):
         A = (sp.identity(m.n_states) - m.beta * m.csr()).tocsc()
         R = np.stack([m.rewards[s] for s in m.rewards], axis=1)
         ref = sla.spsolve(A, R)
-        for method in ("dense", "gmres", "value_iteration"):
+        for method in ("dense", "sparse", "gmres", "value_iteration"):
             sol = solve(m, method=method, tol=1e-12)
             assert sol.converged and sol.residual <= 1e-12
             np.testing.assert_allclose(sol.values, ref, rtol=1e-9, atol=1e-9 * np.abs(ref).max())
@@ -70,7 +70,7 @@ def test_transpose_solve_matches_scipy(models):
     mu = np.random.default_rng(0).random(m.n_states)
     A = (sp.identity(m.n_states) - m.beta * m.csr().T).tocsc()
     ref = sla.spsolve(A, mu)
-    for method in ("dense", "gmres"):
+    for method in ("dense", "sparse", "gmres"):
         x = solve(m, mu, method=method, transpose=True, tol=1e-12).value(0)
         np.testing.assert_allclose(x, ref, rtol=1e-9)
 

@@ -62,9 +62,11 @@ def test_coverage_of_nominal_intervals():
 
 
 def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
-    # lower the dense threshold so the draws of this small model go through the batched,
-    # preconditioned GMRES that large models use
-    import stateworth.valuation.draws as draws_mod
+    # lower the sparse and dense thresholds so the draws of this small model go through the
+    # batched, preconditioned GMRES that large models use
+    import stateworth.solver.sparse as sparse_mod
+    import stateworth.valuation.batched as draws_mod
+    monkeypatch.setattr(sparse_mod, "BLOCK_MAX", 0)
     monkeypatch.setattr(draws_mod, "DENSE_MAX", 10)
     spec = tiny_spec(markets=2, tenure=3)
     t = tiny_tables(spec, seed=2)
@@ -90,7 +92,7 @@ def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
 def test_draws_in_chunks_reuse_one_compile_and_pad_the_last_chunk(monkeypatch):
     # 5 draws in chunks of 2: three calls of one compiled computation, the last chunk padded
     # with its last draw; every draw equals its own dense solve (numpy LU on the explicit matrix)
-    import stateworth.valuation.draws as draws_mod
+    import stateworth.valuation.batched as draws_mod
     monkeypatch.setattr(draws_mod, "DENSE_MAX", 10)
     monkeypatch.setattr(draws_mod, "DRAW_CHUNK", 2)
     spec = tiny_spec(markets=2, tenure=3)

@@ -17,29 +17,64 @@ system singular: the solve then fails or returns a non-distribution, reported as
 
 from __future__ import annotations
 
-from functools import partial
-
-import jax
-import jax.numpy as jnp
 import numpy as np
 
-from stateworth.errors import QueryError
-from stateworth.solver.gmres import gmres
 from stateworth import config
+from stateworth.errors import QueryError
 
 DENSE_MAX = 2500
+_BORDERED = {}
 
 
-@partial(jax.jit, static_argnames=("blocks", "tol", "max_iter"))
 def _bordered_gmres(op, u, blocks, tol, max_iter):
-    n = u.shape[0]
+    if "fn" not in _BORDERED:
+        from functools import partial
 
-    def matvec(x):
-        s = jnp.sum(x.reshape(blocks, -1), axis=1)
-        return x - op.transpose().mv(x) + u * jnp.repeat(s, n // blocks)
+        import jax
+        import jax.numpy as jnp
 
-    x, it, ap, res, st = gmres(matvec, u[:, None], u[:, None], tol=tol, restart=60, max_iter=max_iter)
-    return x[:, 0], res, st
+        from stateworth.solver.gmres import gmres
+
+        @partial(jax.jit, static_argnames=("blocks", "tol", "max_iter"))
+        def fn(op, u, blocks, tol, max_iter):
+            n = u.shape[0]
+
+            def matvec(x):
+                s = jnp.sum(x.reshape(blocks, -1), axis=1)
+                return x - op.transpose().mv(x) + u * jnp.repeat(s, n // blocks)
+
+            x, it, ap, res, st = gmres(matvec, u[:, None], u[:, None], tol=tol, restart=60, max_iter=max_iter)
+            return x[:, 0], res, st
+
+        _BORDERED["fn"] = fn
+    return _BORDERED["fn"](op, u, blocks, tol, max_iter)
+
+
+def long_run_mix(model, block_weights: np.ndarray | None = None) -> np.ndarray:
+    """pi ``(n,)`` of a compiled model, each fixed cell's mass its weight (default equal): by the
+    method the point solve uses (:func:`stateworth.solver.solve.choose_method`): a sparse LU of the
+    bordered system per block on the host, or GMRES on the structured operator."""
+    from stateworth.solver.solve import choose_method
+    from stateworth.solver.sparse import fixed_blocks, stationary_sparse
+
+    F = fixed_blocks(model)
+    w = np.ones(F) if block_weights is None else np.asarray(block_weights, dtype=np.float64)
+    if len(w) != F:
+        raise QueryError(f"{len(w)} fixed-cell weights for {F} fixed cells", field="fixed_weights")
+    if (w < 0).any() or not w.sum() > 0:
+        raise QueryError("fixed-cell weights must be non-negative and not all zero", field="fixed_weights")
+    if choose_method(model) == "sparse":
+        try:
+            pi = stationary_sparse(model.csr(), w)
+        except ValueError:
+            raise QueryError("the chain has more than one recurrent class within a fixed cell; its long-run "
+                             "mix depends on the starting state", field="stationary") from None
+        if not np.all(np.isfinite(pi)) or np.min(pi) < -1e-8:
+            raise QueryError("the stationary distribution could not be determined (the chain may have more than "
+                             "one recurrent class within a fixed cell)", field="stationary")
+        pi = np.clip(pi, 0.0, None).reshape(F, -1)
+        return (pi / np.maximum(pi.sum(axis=1, keepdims=True), 1e-300) * (w / w.sum())[:, None]).reshape(-1)
+    return stationary_distribution(model.operator, w)
 
 
 def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol: float = 1e-11,
@@ -48,7 +83,9 @@ def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol:
 
     ``block_weights`` ``(F,)``: the grid is F equal consecutive blocks (the fixed cells, which
     lead the grid order) with these population shares (normalised); default one block."""
-    config.float64()
+    config.use_jax()
+    import jax.numpy as jnp
+
     n = int(op.shape[0])
     w = np.ones(1) if block_weights is None else np.asarray(block_weights, dtype=np.float64)
     F = len(w)

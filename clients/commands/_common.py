@@ -52,33 +52,36 @@ def parse_selection(items: Sequence[str] | None, what: str = "cohort") -> dict[s
     return out
 
 
-#: valuers already built in this process, by (path, modification time, draws): the demo and the
-#: tests ask many questions of one model; a one-shot command line call never hits it
-_VALUERS: dict[tuple, Any] = {}
+def note(message: str) -> None:
+    """A one-line note on stderr (what the command did about stored values, caches, ...)."""
+    print(f"note: {message}", file=sys.stderr)
 
 
 def load_valuer(path: str, *, draws: bool = True, quiet: bool = False):
-    """A :class:`~stateworth.valuation.Valuer` for a compiled model directory or a spec with
-    written tables (solved on load: every reward stream, and every posterior draw if any)."""
+    """A :class:`~stateworth.valuation.Valuer` for a compiled model directory (its stored values,
+    solved and stored first when there are none or they do not match the model) or for a spec with
+    written tables (solved now: every stream, every posterior draw, the long-run mix)."""
     from pathlib import Path
 
     from stateworth.clients.commands.solve import load_any
     from stateworth.valuation import Valuer
 
     p = Path(path)
-    stamp = p / "manifest.json" if p.is_dir() else p
-    key = (str(p.resolve()), stamp.stat().st_mtime_ns if stamp.exists() else None, bool(draws))
-    if key[1] is not None and key in _VALUERS:
-        return _VALUERS[key]
+    if p.is_dir():
+        from stateworth.rules import load_model
+        from stateworth.valuation import stored
+
+        model = load_model(p)[0]
+        if not quiet and sys.stderr.isatty() and not stored.exists(p):
+            print(f"solving {model.name} ({model.n_states:,} states, {len(model.streams)} streams"
+                  f"{', with posterior draws' if model.draws else ''}; stored with the model for next time) ...",
+                  file=sys.stderr)
+        return Valuer.open(p, model, note=note)
     model = load_any(path)
     if not quiet and sys.stderr.isatty():
-        print(f"solving {model.name} ({model.n_states:,} states, {len(model.rewards)} streams"
+        print(f"solving {model.name} ({model.n_states:,} states, {len(model.streams)} streams"
               f"{', with posterior draws' if model.draws and draws else ''}) ...", file=sys.stderr)
-    valuer = Valuer.build(model, draws=draws)
-    if len(_VALUERS) >= 8:
-        _VALUERS.pop(next(iter(_VALUERS)))
-    _VALUERS[key] = valuer
-    return valuer
+    return Valuer.build(model, draws=draws)
 
 
 def selection_mask(valuer, selection: Mapping[str, Sequence[str]], what: str = "cohort"):

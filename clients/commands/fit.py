@@ -34,6 +34,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--engine", default="duckdb", choices=["duckdb", "spark"],
                    help="where the counting query runs: the embedded DuckDB (default) or Spark SQL (pyspark; "
                         "local mode unless STATEWORTH_SPARK_MASTER names a cluster)")
+    p.add_argument("--no-solve", action="store_true",
+                   help="do not solve the fitted model (by default its values, posterior draws' values and "
+                        "long-run mix are solved and stored with it, so queries answer at once)")
     p.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
 
 
@@ -58,9 +61,26 @@ def run(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec)
     opts = FitOptions(strength=strength, forbidden="drop" if args.drop_forbidden else "error", gaps=args.gaps,
                       draws=args.draws, seed=args.seed, engine=args.engine)
+    solved_box = []
+
+    def store_values(res, tmp) -> None:
+        # solved before the directory appears, so the model is published with its values
+        from stateworth.valuation import stored
+        from stateworth.valuation.solved import solve_model
+
+        solved_box.append(solve_model(res.model))
+        stored.save(tmp, solved_box[0])
+
     res = fit_to_dir(spec, args.panel, args.markets, args.output, opts, source=args.spec,
-                     progress=not args.quiet and sys.stderr.isatty())
+                     progress=not args.quiet and sys.stderr.isatty(),
+                     before_publish=None if args.no_solve else store_values)
     if not args.quiet:
         print(summary_text(res.diagnostics))
         print(f"wrote {args.output} (version {res.model.version}, {res.model.n_states:,} states)")
+        if solved_box:
+            s = solved_box[0]
+            d = s.stats.get("draws") or {}
+            print(f"solved and stored its values ({s.stats['point'].get('method')}, "
+                  f"{float(s.stats['point'].get('seconds') or 0):.2f} s"
+                  + (f"; {d.get('draws')} posterior draws, {float(d.get('seconds') or 0):.2f} s" if d else "") + ")")
     return 0
