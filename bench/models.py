@@ -144,7 +144,7 @@ def weekly(size: str = "large", seed: int = 0) -> tuple[dict, dict[str, np.ndarr
     x season (13 four-week periods, a cycle) x status (prospect, lapsed, 6 plans) x usage band
     (4 levels, dense). beta = 0.9985 a week (8.1 % a year); joining and churn vary by season,
     churn falls with tenure and usage. "large": 8 x 104 x 13 x 8 x 4 = 346,112 states."""
-    R, T, C = {"large": (8, 104, 13), "small": (2, 12, 13)}[size]
+    R, T, C = {"large": (8, 104, 13), "medium": (1, 104, 13), "small": (2, 12, 13)}[size]
     P, U = 6, 4
     S = 2 + P
     rng = np.random.default_rng(seed)

@@ -322,7 +322,7 @@ def test_query_command(served, capsys):
     assert main(["query", *t, "models"]) == 0
     assert served["b"] in capsys.readouterr().out
     pairs = [f"{k}={v}" for k, v in STATE.items()]
-    assert main(["query", *t, "--json", "value", MODEL, *pairs, "--interval", "0.9"]) == 0
+    assert main(["query", *t, "--json", "value", MODEL, *pairs, "--level", "0.9"]) == 0
     doc = json.loads(capsys.readouterr().out)
     assert doc["version"] == served["b"] and doc["value"]["unit"] == "EUR"
     assert main(["query", *t, "contrast", MODEL, *pairs, "--acquisition", "duo"]) == 0

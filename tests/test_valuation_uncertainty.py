@@ -78,10 +78,20 @@ def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
         ref = solve(md, list(v.streams), method="dense").values
         got = v.draw_values(np.arange(model.n_states), "revenue")[d]
         np.testing.assert_allclose(got, ref[:, 0], rtol=1e-8)
-    a = v.acquisition(PROSPECT, "solo", level=0.9)
+    a = v.contrast(PROSPECT, {**PROSPECT, "status": "solo"}, level=0.9)
     each = v.draw_values(np.array([v.index({**PROSPECT, "status": "solo"}), v.index(PROSPECT)]), "revenue")
     lo, hi = np.quantile(each[:, 0] - each[:, 1], [0.05, 0.95])
     assert a.interval == pytest.approx((lo, hi), rel=1e-12)
+    # an acquisition lands in the mix each draw's own engagement table gives a joiner
+    acq = v.acquisition(PROSPECT, "solo", level=0.9)
+    eng = model.draws.get("engagement")
+    lv = model.spec.axis_levels("engagement")
+    per = []
+    for d in range(v.n_draws):
+        T = (eng[d] if eng is not None else model.tables["engagement"])[2, lv.index(PROSPECT["engagement"])]
+        dst = np.array([v.index({**PROSPECT, "status": "solo", "engagement": e}) for e in lv])
+        per.append(T @ v.draw_values(dst, "revenue")[d] - v.draw_values(np.array([v.index(PROSPECT)]), "revenue")[d, 0])
+    assert acq.interval == pytest.approx(tuple(np.quantile(per, [0.05, 0.95])), rel=1e-10)
     assert v.draw_stats["preconditioned"]
     # horizon values of the draws: H applications of each draw's operator
     md = model.with_tables({a: model.draws[a][5] for a in model.draws})

@@ -53,8 +53,13 @@ def check_plan(solved: Solved, plan: str, what: str = "plan") -> None:
 
 def acquisition(solved: Solved, state: Coords, plan: str, stream: str = "revenue", horizon: int | None = None,
                 level: float = 0.9) -> Answer:
-    """Value of acquiring a non-member: V(member counterpart on ``plan``) - V(non-member state).
-    QueryError if the state is a member, ``plan`` is not a plan, or it is not sold there."""
+    """Value of acquiring a non-member onto ``plan``: E[V(landing state)] - V(non-member state),
+    the landing states being where the chain's own joining rows put a joiner (:func:`landing`:
+    engagement and other chance axes as the factors say for that move, counters reset as the
+    spec's ``reset_on`` says). ``details["landing"]`` lists the mix; ``details["after"]`` is its
+    most likely state. QueryError if the state is a member, ``plan`` is not a plan, is not sold
+    there, or the move rules forbid joining it from this status. (For one chosen after-state use
+    :func:`contrast`.)"""
     spec = solved.model.spec
     c = coords(solved, index(solved, state))
     if c[spec.status_axis] in spec.members:
@@ -63,7 +68,7 @@ def acquisition(solved: Solved, state: Coords, plan: str, stream: str = "revenue
     check_plan(solved, plan)
     st.check_sold(spec, c, plan)
     st.check_move(spec, c[spec.status_axis], plan)
-    return contrast(solved, c, counterpart(solved, c, plan), stream, horizon, level, kind="acquisition")
+    return landing_contrast(solved, c, plan, stream, horizon, level, kind="acquisition")
 
 
 def plan_change(solved: Solved, state: Coords, to_plan: str, stream: str = "revenue", horizon: int | None = None,
@@ -86,8 +91,9 @@ def plan_change(solved: Solved, state: Coords, to_plan: str, stream: str = "reve
 
 def win_back(solved: Solved, state: Coords, to_plan: str, stream: str = "revenue", horizon: int | None = None,
              level: float = 0.9) -> Answer:
-    """Winning back a former member: like :func:`acquisition`, but the state's status must be a
-    former-member level (a non-member level that members can move into)."""
+    """Winning back a former member: like :func:`acquisition` (into the chain's landing mix for
+    that move), but the state's status must be a former-member level (a non-member level that
+    members can move into)."""
     spec = solved.model.spec
     c = coords(solved, index(solved, state))
     former = st.former_member_levels(spec)
@@ -97,7 +103,7 @@ def win_back(solved: Solved, state: Coords, to_plan: str, stream: str = "revenue
     check_plan(solved, to_plan, "to_plan")
     st.check_sold(spec, c, to_plan)
     st.check_move(spec, c[spec.status_axis], to_plan, "to_plan")
-    return contrast(solved, c, counterpart(solved, c, to_plan), stream, horizon, level, kind="win_back")
+    return landing_contrast(solved, c, to_plan, stream, horizon, level, kind="win_back")
 
 
 def engagement_change(solved: Solved, state: Coords, axis: str, to_level: str, stream: str = "revenue",
@@ -118,14 +124,14 @@ def engagement_change(solved: Solved, state: Coords, axis: str, to_level: str, s
 
 def naive_comparison(solved: Solved, state: Coords, plan: str, stream: str = "revenue") -> dict[str, Any]:
     """The shortcut figures beside the honest one, for a non-member state and a plan:
-    ``member_value`` V(s+) (the usual lifetime-value shortcut), ``honest`` V(s+) - V(s),
-    ``one_period`` the stream's cash in one member period at s+, ``gap_ratio`` member_value /
+    ``member_value`` V(s+) (the usual lifetime-value shortcut; s+ the landing mix), ``honest``
+    V(s+) - V(s), ``one_period`` the stream's cash in one member period at s+, ``gap_ratio`` member_value /
     honest, plus unit, version and a caution."""
     acq = acquisition(solved, state, plan, stream)
-    after = index(solved, acq.details["after"])
     spec = solved.model.spec
-    one = float(period_cash(spec, solved.model.grid,
-                            None if stream == "member_months" else spec.rewards[stream])[after])
+    dst, w, _ = landing(solved, index(solved, state), plan)
+    one = float(np.dot(w, period_cash(spec, solved.model.grid,
+                                      None if stream == "member_months" else spec.rewards[stream])[dst]))
     member_value = float(acq.details["after_value"])
     honest = float(acq.value)
     return {"state": acq.details["before"], "member_state": acq.details["after"], "stream": stream,
@@ -135,3 +141,111 @@ def naive_comparison(solved: Solved, state: Coords, plan: str, stream: str = "re
             "honest_interval": None if acq.interval is None else list(acq.interval), "level": acq.level,
             "caution": CAUTION + ("; 'member_value' ignores that a non-member may join later anyway and "
                                   "'one_period' ignores that members stay")}
+
+
+def landing(solved: Solved, state: int, status: str) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """Where a customer in flat state ``state`` lands when their next status is ``status``, as the
+    chain's own factors say: the next levels of the other random axes (engagement, band, ...)
+    drawn given the current state and that next status, ``P(x' | s, status' = status)``; counters
+    reset as the status event's ``reset_on`` says; cycles and fixed axes as now (a contrast
+    compares two states at the same date).
+
+    Returns ``(states (m,), weights (m,), draw_weights (D, m) or None)``: the landing states and
+    their probabilities under the point tables and under each posterior draw's tables."""
+    model = solved.model
+    spec, grid = model.spec, model.grid
+    st_axis = spec.status_axis
+    target = grid.level_index(st_axis, status)
+    cur = np.array(np.unravel_index(int(state), grid.shape))
+    others = [f for f in model.factors if f.axis != st_axis]
+    sizes = [grid.axis(f.axis).size for f in others]
+    combos = np.indices(sizes).reshape(len(sizes), -1) if others else np.zeros((0, 1), dtype=np.int64)
+    nxt = {f.axis: combos[k] for k, f in enumerate(others)}
+    nxt[st_axis] = np.full(combos.shape[1], target)
+    pos = {a.name: i for i, a in enumerate(grid.axes)}
+
+    def weights(tables: dict, lead: int) -> np.ndarray:
+        """P(x', status' = status | s) over the combos; where that is zero everywhere (the
+        tables give this move no mass from s), the law of x' with the status factor left out,
+        so that a move the rules allow still has a landing mix."""
+        joint = rest = None
+        for f in model.factors:
+            idx = [nxt[g[5:]] if g.startswith("next.") else np.full(combos.shape[1], cur[pos[g]]) for g in f.given]
+            idx.append(nxt[f.axis])
+            p = np.asarray(tables[f.axis])[(slice(None),) * lead + tuple(idx)]
+            joint = p if joint is None else joint * p
+            if f.axis != st_axis:
+                rest = p if rest is None else rest * p
+        rest = np.ones_like(joint) if rest is None else rest
+        tot = joint.sum(axis=-1, keepdims=True)
+        w = np.where(tot > 0, joint, rest)
+        return w / np.maximum(w.sum(axis=-1, keepdims=True), 1e-300)
+
+    w = weights(model.tables, 0)
+    D = solved.n_draws
+    wd = None
+    if D and model.draws:
+        tabs = {a: (model.draws[a] if a in model.draws else np.broadcast_to(model.tables[a], (D,) + model.tables[a].shape))
+                for a in model.tables}
+        wd = weights(tabs, 1)
+    keep = w > 0
+    if wd is not None:
+        keep = keep | np.any(wd > 0, axis=0)
+        wd = wd[:, keep]
+    w = w[keep]
+    # the landing states: status set (counters reset by the event), random axes at the combo
+    base = st.moved_states(spec, grid, np.array([int(state)]), {st_axis: status})
+    codes = np.array(np.unravel_index(base, grid.shape))[:, 0]
+    out = np.repeat(codes[:, None], int(keep.sum()), axis=1)
+    for f in others:
+        out[pos[f.axis]] = nxt[f.axis][keep]
+    return np.ravel_multi_index(tuple(out), grid.shape).astype(np.int64), w, wd
+
+
+def describe_landing(solved: Solved, states: np.ndarray, weights: np.ndarray, top: int = 6) -> list[dict[str, Any]]:
+    """The landing mix as a list of ``{levels of the random axes other than the status, share}``,
+    largest first (at most ``top``, the rest summed as ``other``)."""
+    model = solved.model
+    names = [f.axis for f in model.factors if f.axis != model.spec.status_axis]
+    order = np.argsort(-weights)
+    out = []
+    for k in order[:top]:
+        c = coords(solved, int(states[k]))
+        out.append({"levels": {a: c[a] for a in names}, "share": float(weights[k])})
+    rest = float(weights[order[top:]].sum()) if len(order) > top else 0.0
+    if rest > 0:
+        out.append({"levels": {"other": "other"}, "share": rest})
+    return out
+
+
+def landing_contrast(solved: Solved, state: Coords, plan: str, stream: str, horizon: int | None, level: float,
+                     kind: str) -> Answer:
+    """V(landing mix on ``plan``) - V(state): the after value is the landing distribution's
+    expectation (:func:`landing`), within each posterior draw under that draw's own landing
+    weights."""
+    from stateworth.valuation.answer import percentile_interval
+    from stateworth.valuation.lookups import check_level, draw_values
+
+    level = check_level(level)
+    i = index(solved, state)
+    dst, w, wd = landing(solved, i, plan)
+    v_after = float(np.dot(w, values(solved, dst, stream, horizon)))
+    v_before = float(values(solved, np.array([i]), stream, horizon)[0])
+    interval = None
+    details: dict[str, Any] = {"before": coords(solved, i), "after": coords(solved, int(dst[np.argmax(w)])),
+                               "landing": describe_landing(solved, dst, w), "before_value": v_before,
+                               "after_value": v_after}
+    if solved.draws is not None:
+        dv = draw_values(solved, dst, stream, horizon)
+        per = np.sum(dv * (wd if wd is not None else w[None, :]), axis=1) - draw_values(
+            solved, np.array([i]), stream, horizon)[:, 0]
+        lo, hi = percentile_interval(per, level)
+        interval = (float(lo), float(hi))
+        from stateworth.valuation.lookups import draws_needed
+        need = draws_needed(level)
+        if solved.n_draws < need:
+            details["interval_note"] = (f"unreliable: {solved.n_draws} posterior draws, fewer than the {need} a "
+                                        f"{level:.0%} interval needs; fit with --draws {need} or more")
+    return Answer(kind=kind, value=v_after - v_before, unit=solved.unit(stream), version=solved.version,
+                  stream=stream, interval=interval, level=level, horizon=None if horizon is None else int(horizon),
+                  details=details)

@@ -103,13 +103,16 @@ def selection_mask(valuer, selection: Mapping[str, Sequence[str]], what: str = "
 def cohort_weights(valuer, selection: Mapping[str, Sequence[str]], basis: str = "long-run",
                    what: str = "cohort"):
     """Cohort weights ``(n,)`` summing to 1: the long-run state mix (``valuer.stationary()``)
-    restricted to the selection, or ``basis="uniform"``: equal weight on each selected state.
+    restricted to the selection, or ``basis="uniform"``: equal weight on each selected state the
+    chain can reach.
     QueryError when the selection holds no weight (e.g. a plan not sold where selected)."""
     import numpy as np
 
     mask = selection_mask(valuer, selection, what)
     if basis == "uniform":
-        w = mask.astype(np.float64)
+        # states no customer can be in carry no weight
+        reach = valuer.solved.reachable
+        w = (mask if reach is None else mask & reach).astype(np.float64)
     elif basis == "long-run":
         pi = np.asarray(valuer.stationary(), dtype=np.float64)
         # the long-run solve leaves round-off (~1e-17) on unreachable states: that is no weight
@@ -123,6 +126,24 @@ def cohort_weights(valuer, selection: Mapping[str, Sequence[str]], basis: str = 
         raise QueryError(f"the selection {sel} holds no {'states' if basis == 'uniform' else 'long-run weight'}; "
                          "widen it (a plan not sold in a market, or a state never reached, has none)", field=what)
     return w / total
+
+
+def cohort_mix(valuer, weights) -> str:
+    """What population cohort weights describe, by status level: ``"solo 66%, duo 24%, ..."``
+    (levels with no weight left out), so a reader knows who J is about."""
+    import numpy as np
+
+    model = valuer.model
+    st = model.spec.status_axis
+    codes = model.grid.codes()[model.grid.position(st)]
+    parts = []
+    for i, lv in enumerate(model.grid.axis(st).levels):
+        share = float(np.sum(np.where(codes == i, weights, 0.0)))
+        if share > 0.0005:
+            parts.append(f"{lv} {share:.0%}")
+    missing = [lv for i, lv in enumerate(model.grid.axis(st).levels)
+               if float(np.sum(np.where(codes == i, weights, 0.0))) <= 0.0005]
+    return ", ".join(parts) + (f" (no {', '.join(missing)})" if missing else "")
 
 
 def add_model_argument(p: argparse.ArgumentParser) -> None:

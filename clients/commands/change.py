@@ -49,12 +49,17 @@ def run(args: argparse.Namespace) -> int:
                               when={k: (v[0] if len(v) == 1 else v) for k, v in when.items()})
     res = valuer.transition_change(change, stream=stream, weights=weights, level=level)
     if args.json:
-        c.print_json(res.to_dict())
+        doc = res.to_dict()
+        doc["figure"] = "exact: the chain re-solved with the changed probability (a finite change, not a slope)"
+        doc["cohort_mix"] = c.cohort_mix(valuer, weights)
+        c.print_json(doc)
         return 0
     print(c.header(valuer, stream))
     print(f"change: {change.describe()}")
+    print("exact: the chain re-solved with the changed probability (a finite change; `stateworth marginal` "
+          "gives slopes, which differ from this for changes that are not small)")
     print(f"cohort: {c.describe_state({k: ','.join(v) for k, v in selection.items()}) or 'every state'} "
-          f"({args.basis} weights)")
+          f"({args.basis} weights): {c.cohort_mix(valuer, weights)}")
     print_table(["figure", "value", f"{level:.0%} interval", "unit"],
                 [["cohort-weighted change of value", money(res.weighted), interval(res.interval), res.unit],
                  ["largest change at one state", money(float(np.max(np.abs(res.delta)))), "", res.unit]])

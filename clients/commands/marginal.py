@@ -49,11 +49,17 @@ def run(args: argparse.Namespace) -> int:
         doc = res.to_dict()
         doc["entries"] = entries
         doc["pooled_over"] = pool
+        doc["figure"] = "slope: d J / d probability, linear in the change (use change for an exact finite change)"
+        doc["cohort_mix"] = c.cohort_mix(valuer, weights)
         c.print_json(doc)
         return 0
     print(c.header(valuer, stream))
     print(f"cohort: {c.describe_state({k: ','.join(v) for k, v in selection.items()}) or 'every state'} "
           f"({args.basis} weights); cohort value J = {money(res.objective)} {res.unit} per customer")
+    print(f"J describes: {c.cohort_mix(valuer, weights)}"
+          + (" (the long-run mix: never-members have joined or left by then)" if args.basis == "long-run" else ""))
+    print("these are slopes (linear, for small changes); `stateworth change` re-solves the chain for the exact "
+          "effect of a finite change")
 
     def prob(e):
         lo, hi = e["probability_range"]
