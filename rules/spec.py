@@ -12,6 +12,7 @@ whose ``problems`` attribute lists them.
 from __future__ import annotations
 
 import math
+import re
 import tomllib
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -213,15 +214,83 @@ def _pydantic_problems(err: ValidationError) -> list[str]:
 
 
 def parse_spec(data: dict[str, Any], source: str = "<spec>") -> Spec:
-    """Validate a spec given as a dict (already parsed TOML). Raises SpecError with all problems."""
+    """Validate a spec given as a dict (already parsed TOML). Raises SpecError with all problems:
+    the values pydantic refuses (unknown keys, wrong types) *and* the cross-reference problems of
+    the rest (:func:`spec_problems`)."""
+    spec, problems = spec_problems(data)
+    if problems:
+        raise _spec_error(source, problems)
+    assert spec is not None
+    return spec
+
+
+def spec_problems(data: dict[str, Any]) -> tuple[Spec | None, list[str]]:
+    """``(spec, problems)``: every problem of a spec dict at once (the spec is None when any).
+
+    A value pydantic refuses (a misspelt key, a wrong type) stops pydantic from building the
+    spec, which would hide every cross-reference problem behind the first typo. So the refused
+    values are taken out of a copy and the copy is validated again; when that succeeds, the
+    cross-reference checks (:func:`check_spec`) run on it, leaving out what they say about the
+    keys taken out (already reported) . A copy that still fails (a required key missing) gets
+    no cross-reference checks until that is fixed."""
     try:
         spec = Spec.model_validate(data)
     except ValidationError as err:
-        raise _spec_error(source, _pydantic_problems(err)) from None
+        problems = _pydantic_problems(err)
+        removed = [path for e in err.errors() if e["type"] != "missing"
+                   for path in [_data_path(data, e["loc"])] if path]
+        rest = _without(data, removed)
+        try:
+            repaired = Spec.model_validate(rest)
+        except ValidationError:
+            return None, problems
+        cut = [_dotted(path) for path in removed]
+        for pr in check_spec(repaired):
+            key = _dotted_key(pr)
+            if not any(key == c or key.startswith(c + ".") for c in cut) and pr not in problems:
+                problems.append(pr)
+        return None, problems
     problems = check_spec(spec)
-    if problems:
-        raise _spec_error(source, problems)
-    return spec
+    return (None if problems else spec), problems
+
+
+def _data_path(data: Any, loc: tuple) -> tuple:
+    """The part of a pydantic error location that exists in the data (pydantic adds the names
+    of union branches, ``str`` or ``list[str]``, which are not keys)."""
+    out: list = []
+    cur = data
+    for part in loc:
+        if isinstance(cur, dict) and part in cur:
+            out.append(part)
+            cur = cur[part]
+        elif isinstance(cur, list) and isinstance(part, int) and 0 <= part < len(cur):
+            out.append(part)
+            cur = cur[part]
+    return tuple(out)
+
+
+def _without(data: Any, paths: list[tuple]) -> Any:
+    """A deep copy of ``data`` without the values at ``paths`` (list items removed from the
+    back, so that earlier indices stay valid)."""
+    import copy
+
+    out = copy.deepcopy(data)
+    for path in sorted(set(paths), key=lambda p: [(0, x) if isinstance(x, int) else (1, str(x)) for x in p],
+                       reverse=True):
+        parent = out
+        for part in path[:-1]:
+            parent = parent[part]
+        del parent[path[-1]]
+    return out
+
+
+def _dotted(path: tuple) -> str:
+    return ".".join(str(p) for p in path)
+
+
+def _dotted_key(problem: str) -> str:
+    """The key path of a problem line, ``axes.status.table[2].probs`` as ``axes.status.table.2.probs``."""
+    return re.sub(r"\[(\d+)\]", r".\1", problem.split(":", 1)[0])
 
 
 def load_spec(path: str | Path) -> Spec:

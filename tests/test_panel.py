@@ -68,7 +68,7 @@ def test_unknown_level(spec, files):
     bad = df.copy()
     bad.loc[5, "engagement"] = "medium"
     e = _err(spec, _write(bad, d, "level.csv"))
-    assert "level.csv: row 6, column engagement" in str(e) and "'medium'" in str(e) and "low, high" in str(e)
+    assert "level.csv: row 6 (line 7), column engagement" in str(e) and "'medium'" in str(e) and "low, high" in str(e)
 
 
 def test_never_member_rows_refused(spec, files):
@@ -76,14 +76,14 @@ def test_never_member_rows_refused(spec, files):
     bad = df.copy()
     bad.loc[2, "status"] = "prospect"
     e = _err(spec, _write(bad, d, "prospect.csv"))
-    assert "row 3, column status" in str(e) and "never joined" in str(e)
+    assert "row 3 (line 4), column status" in str(e) and "never joined" in str(e)
 
 
 def test_duplicate_account_period(spec, files):
     df, _, d = files
     bad = pd.concat([df, df.iloc[[10]]], ignore_index=True)
     e = _err(spec, _write(bad, d, "dup.csv"))
-    assert f"row {len(bad)}, columns account, period" in str(e) and "same account and period" in str(e)
+    assert f"row {len(bad)} (line {len(bad) + 1}), columns account, period" in str(e) and "same account and period" in str(e)
     assert df.iloc[10]["account"] not in str(e).split("row")[0]  # no account id printed
 
 
@@ -92,7 +92,7 @@ def test_unparsable_period(spec, files):
     bad = df.copy()
     bad.loc[7, "period"] = "2024/03"
     e = _err(spec, _write(bad, d, "period.csv"))
-    assert "row 8, column period" in str(e) and "YYYY-MM" in str(e)
+    assert "row 8 (line 9), column period" in str(e) and "YYYY-MM" in str(e) and "2024/03" not in str(e)
 
 
 def test_gap_policy(spec, files):
@@ -118,7 +118,7 @@ def test_bad_revenue(spec, files, value, word):
     bad = df.copy()
     bad.loc[4, "revenue"] = value
     e = _err(spec, _write(bad, d, "rev.csv"))
-    assert "row 5, column revenue" in str(e) and word in str(e)
+    assert "row 5 (line 6), column revenue" in str(e) and word in str(e)
 
 
 def test_market_missing_from_size_table(spec, files):
@@ -144,7 +144,7 @@ def test_market_table_bad_rows(spec, files):
     bad = mk.copy()
     bad.loc[1, "high"] = 1  # high below size
     e = _err(spec, p, _write(bad, d, "m3.markets.csv"))
-    assert "m3.markets.csv: row 2, columns low, size, high" in str(e)
+    assert "m3.markets.csv: row 2 (line 3), columns low, size, high" in str(e)
 
 
 def test_check_panel_lists_problems(spec, files):

@@ -28,7 +28,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--drop-forbidden", action="store_true",
                    help="drop moves the spec's rules forbid (counted in the diagnostics) instead of failing")
     p.add_argument("--gaps", default="error", choices=["error", "non_member"],
-                   help="a missing month inside an account's history: an error (default) or a former-member month")
+                   help="a missing period inside an account's history: an error (default) or a former-member period")
     p.add_argument("--draws", type=int, default=100, help="posterior draws of every table for intervals (default 100)")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior draws (default 0)")
     p.add_argument("--engine", default="duckdb", choices=["duckdb", "spark"],
