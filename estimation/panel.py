@@ -216,7 +216,7 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
     if missing:
         have = ", ".join(c for c in cols if c != "_row")
         return [(path, f"missing required column(s) {', '.join(missing)}; the file has {have} "
-                       f"(see README 'Panel format')")], con
+                       f"(see README 'Fitting from an account panel')")], con
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     probs: list[tuple[str, str]] = []
 

@@ -13,14 +13,16 @@ parent cell; never-member join rates come from first joins and the market sizes;
 band axis is fitted from its covariates. Nothing is written when fitting fails.
 
 example:
+  stateworth fit examples/fitness.toml --panel demo-out/panel/fitted.parquet \\
+      --markets demo-out/panel/fitted.markets.csv -o out/model
   stateworth simulate examples/fitness.toml --accounts 20000 -o out/panel.parquet
-  stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model
+  stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model2
 """
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("spec", help="the model spec (TOML)")
-    p.add_argument("--panel", required=True, help="account panel (.csv or .parquet; see README 'Panel format')")
+    p.add_argument("--panel", required=True, help="account panel (.csv or .parquet; see README 'Fitting from an account panel')")
     p.add_argument("--markets", required=True, help="market-size table (market, size, low, high[, period])")
     p.add_argument("-o", "--output", required=True, help="model directory to write")
     p.add_argument("--strength", default="auto",

@@ -13,6 +13,7 @@ each status level averaged over the grid; --save writes the compiled model artif
 example:
   stateworth solve examples/fitness.toml
   stateworth solve examples/fitness.toml --save out/model --json
+  stateworth solve demo-out/models/fitted
 """
 
 
