@@ -558,8 +558,11 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
 
 
 def check_panel(spec: Spec, panel_path: str, markets_path: str | None, *, gaps: GapPolicy = "error") -> list[str]:
-    """Every problem found in a panel (and its market-size table) against a spec, as
-    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine)."""
+    """The problems found reading a panel (and its market-size table) against a spec, as
+    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine).
+    The checks a fit adds on top (forbidden moves and joins, the propensity score, the join
+    hazard's at-risk counts) are in :func:`stateworth.estimation.fit.check_fit_inputs`, which
+    ``stateworth check --panel`` runs."""
     try:
         panel = load_panel(spec, str(panel_path), gaps=gaps)
     except PanelError as e:

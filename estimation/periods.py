@@ -166,20 +166,25 @@ def index_sql(column: str, column_type: str, kind: str) -> str:
     ctype = column_type.upper()
     if ctype.startswith("DATE") or ctype.startswith("TIMESTAMP"):
         return _date_index_sql(f"CAST({column} AS DATE)", kind)
-    t = f"upper(trim(CAST({column} AS VARCHAR)))"
+    raw = f"CAST({column} AS VARCHAR)"
+    t = f"upper(trim({raw}))"
     d = f"TRY_CAST(substr({t}, 1, 10) AS DATE)"
     as_date = f"CASE WHEN regexp_matches({t}, '{DATE_RE}') THEN {_date_index_sql(d, kind)} END"
-    y = f"CAST(substr({t}, 1, 4) AS INTEGER)"
-    if kind == "month":
-        label = f"{y} * 12 + CAST(substr({t}, 6, 2) AS INTEGER) - 1"
-    elif kind == "quarter":
-        label = f"{y} * 4 + CAST(substr({t}, 7, 1) AS INTEGER) - 1"
-    elif kind == "year":
-        label = y
-    else:
-        w = f"CAST(substr({t}, 7, 2) AS INTEGER)"
+
+    def label(x: str) -> str:
+        y = f"CAST(substr({x}, 1, 4) AS INTEGER)"
+        if kind == "month":
+            return f"{y} * 12 + CAST(substr({x}, 6, 2) AS INTEGER) - 1"
+        if kind == "quarter":
+            return f"{y} * 4 + CAST(substr({x}, 7, 1) AS INTEGER) - 1"
+        if kind == "year":
+            return y
+        w = f"CAST(substr({x}, 7, 2) AS INTEGER)"
         jan4 = f"make_date({y}, 1, 4)"
         monday = f"({jan4} - CAST(isodow({jan4}) - 1 AS INTEGER) + 7 * ({w} - 1))"
         # week 53 exists only in years whose 28 December falls in it
-        label = f"CASE WHEN {w} <= weekofyear(make_date({y}, 12, 28)) THEN {_date_index_sql(monday, 'week')} END"
-    return f"CASE WHEN regexp_matches({t}, '{LABEL_RE[kind]}') THEN {label} ELSE {as_date} END"
+        return f"CASE WHEN {w} <= weekofyear(make_date({y}, 12, 28)) THEN {_date_index_sql(monday, 'week')} END"
+
+    # a label as written is the common case: it is tested before any trimming or upper-casing
+    return (f"CASE WHEN regexp_matches({raw}, '{LABEL_RE[kind]}') THEN {label(raw)} "
+            f"WHEN regexp_matches({t}, '{LABEL_RE[kind]}') THEN {label(t)} ELSE {as_date} END")

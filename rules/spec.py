@@ -12,7 +12,6 @@ whose ``problems`` attribute lists them.
 from __future__ import annotations
 
 import math
-import re
 import tomllib
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -214,9 +213,8 @@ def _pydantic_problems(err: ValidationError) -> list[str]:
 
 
 def parse_spec(data: dict[str, Any], source: str = "<spec>") -> Spec:
-    """Validate a spec given as a dict (already parsed TOML). Raises SpecError with all problems:
-    the values pydantic refuses (unknown keys, wrong types) *and* the cross-reference problems of
-    the rest (:func:`spec_problems`)."""
+    """Validate a spec given as a dict (already parsed TOML). Raises SpecError with all problems
+    (:func:`spec_problems`: unknown keys do not hide the cross-reference problems)."""
     spec, problems = spec_problems(data)
     if problems:
         raise _spec_error(source, problems)
@@ -227,29 +225,24 @@ def parse_spec(data: dict[str, Any], source: str = "<spec>") -> Spec:
 def spec_problems(data: dict[str, Any]) -> tuple[Spec | None, list[str]]:
     """``(spec, problems)``: every problem of a spec dict at once (the spec is None when any).
 
-    A value pydantic refuses (a misspelt key, a wrong type) stops pydantic from building the
-    spec, which would hide every cross-reference problem behind the first typo. So the refused
-    values are taken out of a copy and the copy is validated again; when that succeeds, the
-    cross-reference checks (:func:`check_spec`) run on it, leaving out what they say about the
-    keys taken out (already reported) . A copy that still fails (a required key missing) gets
-    no cross-reference checks until that is fixed."""
+    A key pydantic does not know (a misspelt key) stops it from building the spec, which would
+    hide every cross-reference problem behind the first typo. An unknown key contributes nothing
+    to the spec, so when unknown keys are all pydantic refuses, they are taken out of a copy and
+    the cross-reference checks (:func:`check_spec`) run on the rest. A value of the wrong type
+    (or a required key missing) is listed alone with the other refused values: without it the
+    rest cannot be read as meant (a plan dropped from ``members`` would make every mention of
+    it look wrong)."""
     try:
         spec = Spec.model_validate(data)
     except ValidationError as err:
         problems = _pydantic_problems(err)
-        removed = [path for e in err.errors() if e["type"] != "missing"
-                   for path in [_data_path(data, e["loc"])] if path]
-        rest = _without(data, removed)
-        try:
-            repaired = Spec.model_validate(rest)
-        except ValidationError:
+        if any(e["type"] != "extra_forbidden" for e in err.errors()):
             return None, problems
-        cut = [_dotted(path) for path in removed]
-        for pr in check_spec(repaired):
-            key = _dotted_key(pr)
-            if not any(key == c or key.startswith(c + ".") for c in cut) and pr not in problems:
-                problems.append(pr)
-        return None, problems
+        try:
+            rest = Spec.model_validate(_without(data, [_data_path(data, e["loc"]) for e in err.errors()]))
+        except ValidationError:  # pragma: no cover - removing unknown keys leaves a readable spec
+            return None, problems
+        return None, problems + [pr for pr in check_spec(rest) if pr not in problems]
     problems = check_spec(spec)
     return (None if problems else spec), problems
 
@@ -270,27 +263,16 @@ def _data_path(data: Any, loc: tuple) -> tuple:
 
 
 def _without(data: Any, paths: list[tuple]) -> Any:
-    """A deep copy of ``data`` without the values at ``paths`` (list items removed from the
-    back, so that earlier indices stay valid)."""
+    """A deep copy of ``data`` without the dict keys at ``paths``."""
     import copy
 
     out = copy.deepcopy(data)
-    for path in sorted(set(paths), key=lambda p: [(0, x) if isinstance(x, int) else (1, str(x)) for x in p],
-                       reverse=True):
+    for path in paths:
         parent = out
         for part in path[:-1]:
             parent = parent[part]
-        del parent[path[-1]]
+        parent.pop(path[-1], None)
     return out
-
-
-def _dotted(path: tuple) -> str:
-    return ".".join(str(p) for p in path)
-
-
-def _dotted_key(problem: str) -> str:
-    """The key path of a problem line, ``axes.status.table[2].probs`` as ``axes.status.table.2.probs``."""
-    return re.sub(r"\[(\d+)\]", r".\1", problem.split(":", 1)[0])
 
 
 def load_spec(path: str | Path) -> Spec:
