@@ -172,7 +172,6 @@ class _Inputs:
     sizes: object  # MarketSizes, or None when checking without a market-size table
     joint: JointCounts | None
     first: np.ndarray | None
-    source: str  # the relation the counts were read from (the coded panel, or it banded)
     propensity: dict | None
     dropped: int
     warnings: list[str]
@@ -227,7 +226,7 @@ def _inputs(spec: Spec, panel_path, markets_path, options: FitOptions, con, bar,
         stage("propensity")
         prop = attempt(lambda: _propensity(spec, panel))
         if prop is _FAILED:
-            return _Inputs(panel, sizes, None, None, source_rel, None, 0, warnings)
+            return _Inputs(panel, sizes, None, None, None, 0, warnings)
         band_expr, next_band_expr, diag_prop = prop
         bc = lay.col(lay.band)
         con.execute(f"CREATE OR REPLACE TEMP VIEW banded AS SELECT *, {band_expr} AS {bc}, {next_band_expr} AS _n{bc[1:]} "
@@ -258,7 +257,7 @@ def _inputs(spec: Spec, panel_path, markets_path, options: FitOptions, con, bar,
         for which in ("size", "low", "high"):
             if attempt(lambda which=which: join_counts(panel, first, getattr(sizes, which), which)) is _FAILED:
                 break  # the same first rows fail alike at every size
-    return _Inputs(panel, sizes, joint, first, source_rel, diag_prop, dropped, warnings)
+    return _Inputs(panel, sizes, joint, first, diag_prop, dropped, warnings)
 
 
 def _reach_warnings(spec: Spec, panel: Panel) -> list[str]:
