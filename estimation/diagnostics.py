@@ -68,11 +68,12 @@ def prior_report(spec, factor: Factor, fit: FactorFit, skip: np.ndarray | None =
 
 def summary_text(diag: dict) -> str:
     """A readable summary of the fit diagnostics (no account identifiers)."""
+    period = diag["panel"].get("period", "month")
     L = [f"fit of '{diag['model']}' from {diag['panel']['rows']:,} panel rows, {diag['panel']['accounts']:,} "
          f"accounts, {diag['panel']['first_period']}..{diag['panel']['last_period']}; "
-         f"{diag['panel']['moves']:,} consecutive-month moves counted"]
+         f"{diag['panel']['moves']:,} consecutive-{period} moves counted"]
     if diag["panel"].get("gap_rows_filled"):
-        L.append(f"  {diag['panel']['gap_rows_filled']:,} gap months filled as former-member periods")
+        L.append(f"  {diag['panel']['gap_rows_filled']:,} gap {period}s filled as former-member periods")
     if diag.get("forbidden_dropped"):
         L.append(f"  {diag['forbidden_dropped']:,} moves the spec forbids were dropped (--drop-forbidden)")
     L.append("factors (prior strength alpha = pseudo-moves pulling a cell towards its parent):")
@@ -82,7 +83,7 @@ def summary_text(diag: dict) -> str:
     o = diag["overlap"]
     L.append(f"overlap: {o['cells_failing']} status cells lack moves into a member or a non-member status "
              f"({100 * o['share_failing']:.2f} % of moves); {o['cells_without_moves']} cells have no moves at all")
-    L.append("never-member join hazard per month at the market size (in brackets: at the high .. low size):")
+    L.append(f"never-member join hazard per {period} at the market size (in brackets: at the high .. low size):")
     for m, h in diag["joins"]["hazard"].items():
         lo, hi = diag["joins"]["hazard_high_size"][m], diag["joins"]["hazard_low_size"][m]
         L.append(f"  {m}: {h:.5f} ({lo:.5f}..{hi:.5f})")
@@ -94,5 +95,7 @@ def summary_text(diag: dict) -> str:
             vals = ", ".join(f"{c} {v:+.3f}" if v is not None else f"{c} n/a" for c, v in zip(pr.get("terms", pr["covariates"]), row))
             L.append(f"  band {pr['bands'][b]}: standardised mean difference {vals}")
         L.append(f"  covariates with |SMD| >= {pr['smd_rule']} within some band: {', '.join(pr['unbalanced']) or 'none'}")
+    for w in diag.get("warnings") or []:
+        L.append(f"warning: {w}")
     L.append(CAUTION_LINE)
     return "\n".join(L)

@@ -30,9 +30,9 @@ from stateworth.rules.compiled import CompiledModel, compile_model
 from stateworth.estimation.counts import (JointCounts, count_duckdb, factor_counts, first_rows_sql, transitions_sql)
 from stateworth.estimation.diagnostics import overlap_report, prior_report, summary_text
 from stateworth.estimation.estimate import FactorFit, allowed_mask, posterior
-from stateworth.rules.factors import Factor, factors_of, move_mask
+from stateworth.rules.factors import Factor, factors_of, move_mask, plans_without_way_in, unreachable_plan_warning
 from stateworth.estimation.joins import first_row_table, hazard_summary, join_counts, prospect_rows
-from stateworth.estimation.panel import CODED, Panel, load_markets, load_panel, period_label
+from stateworth.estimation.panel import CODED, Panel, load_markets, load_panel, row_where
 from stateworth.estimation.propensity import SMD_BALANCED, Design, band_cuts, band_of, band_sql, fit_logit, smd_by_band
 from stateworth.rules.spec import Spec
 
@@ -77,47 +77,14 @@ def _progress(enabled: bool, total: int):
 def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, options: FitOptions = FitOptions(),
               *, source: str = "<spec>", progress: bool = False) -> FitResult:
     """Fit every factor of ``spec`` from the panel and the market-size table (see module doc)."""
-    if options.engine not in ENGINES:
-        raise PanelError(f"unknown engine '{options.engine}'; use one of {', '.join(ENGINES)}", where="--engine")
-    if options.forbidden not in ("error", "drop"):
-        raise PanelError(f"forbidden = '{options.forbidden}'; use error or drop", where="forbidden")
-    if options.strength != "auto" and not (isinstance(options.strength, (int, float)) and options.strength > 0):
-        raise PanelError(f"prior strength {options.strength!r}: give a number > 0 or auto", where="--strength")
+    _check_options(options)
     from stateworth.estimation.panel import connect
 
     bar = _progress(progress, 6)
-    con = connect(options.threads)
-    bar.set_description("fit: read panel")
-    panel = load_panel(spec, str(panel_path), gaps=options.gaps, con=con)
-    bar.update()
-    bar.set_description("fit: market sizes")
-    sizes = load_markets(spec, str(markets_path), panel)
-    bar.update()
-    lay = panel.layout
-    source_rel = CODED
-    diag_prop = None
-    band_expr = None
-    if lay.band:
-        bar.set_description("fit: propensity")
-        band_expr, next_band_expr, diag_prop = _propensity(spec, panel)
-        bc = lay.col(lay.band)
-        con.execute(f"CREATE OR REPLACE TEMP VIEW banded AS SELECT *, {band_expr} AS {bc}, {next_band_expr} AS _n{bc[1:]} "
-                    f"FROM {CODED}")
-        source_rel = "banded"
-    bar.update()
-    bar.set_description("fit: count moves")
-    if options.engine == "spark":
-        from stateworth.estimation.spark import count_spark
-
-        joint, first_rows = count_spark(spec, panel, band_expr, lay.col(lay.band) if lay.band else None)
-    else:
-        joint = count_duckdb(spec, con, source_rel)
-        first_rows = con.execute(first_rows_sql(spec, source_rel, sequenced=True)).fetchall()
-    bar.update()
+    inp = _inputs(spec, panel_path, markets_path, options, connect(options.threads), bar)
+    assert inp is not None  # without a problem list, _inputs raises instead
+    panel, sizes, joint, first, diag_prop = inp.panel, inp.sizes, inp.joint, inp.first, inp.propensity
     bar.set_description("fit: tables")
-    joint, dropped = _check_moves(spec, panel, joint, source_rel, options.forbidden)
-    first = first_row_table(panel, first_rows)
-    first, dropped_j = _check_joins(spec, panel, first, options.forbidden)
     rng = np.random.default_rng(options.seed)
     factors = factors_of(spec)
     fits: dict[str, FactorFit] = {}
@@ -141,7 +108,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
     draws = {a: ft.draws for a, ft in fits.items() if ft.draws is not None}
     metadata = {"fitted_from": {"panel": os.path.basename(str(panel_path)), "markets": os.path.basename(str(markets_path)),
                                 "rows": panel.rows, "accounts": panel.accounts,
-                                "periods": [period_label(panel.p_min), period_label(panel.p_max)]},
+                                "periods": [panel.period_label(panel.p_min), panel.period_label(panel.p_max)]},
                 "fit_options": {"strength": options.strength, "forbidden": options.forbidden, "gaps": options.gaps,
                                 "draws": options.draws, "seed": options.seed}}
     # the engine is not part of the metadata: both engines must give the same model (hash)
@@ -153,12 +120,14 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
     st_f = next(f for f in factors if f.axis == spec.status_axis)
     diag = {
         "model": spec.model.name, "version": model.version,
-        "panel": {"rows": panel.rows, "accounts": panel.accounts, "first_period": period_label(panel.p_min),
-                  "last_period": period_label(panel.p_max), "moves": joint.total, "gap_rows_filled": panel.filled},
-        "forbidden_dropped": dropped + dropped_j,
+        "panel": {"rows": panel.rows, "accounts": panel.accounts, "period": panel.period,
+                  "first_period": panel.period_label(panel.p_min), "last_period": panel.period_label(panel.p_max),
+                  "moves": joint.total, "gap_rows_filled": panel.filled},
+        "forbidden_dropped": inp.dropped,
         "prior": [prior_report(spec, f, fits[f.axis], skips[f.axis]) for f in factors],
         "overlap": overlap_report(spec, st_f, fits[spec.status_axis], skips[spec.status_axis]),
         "joins": jdiag,
+        "warnings": inp.warnings,
         "propensity": diag_prop,
         "revenue": _revenue(spec, panel) if panel.has_revenue else None,
         "caution": CAUTION_LINE,
@@ -181,6 +150,140 @@ def fit_to_dir(spec: Spec, panel_path, markets_path, out_dir, options: FitOption
                texts={"diagnostics.txt": summary_text(res.diagnostics) + "\n"},
                before_publish=None if before_publish is None else (lambda tmp: before_publish(res, tmp)))
     return res
+
+
+def check_fit_inputs(spec: Spec, panel_path: str | Path, markets_path: str | Path | None,
+                     options: FitOptions = FitOptions(draws=0)) -> tuple[list[str], list[str]]:
+    """``(problems, warnings)``: every problem :func:`fit_panel` would refuse the panel (and the
+    market-size table, when given) for, as ``"where: what"`` lines, found by the same checks
+    (``stateworth check --panel``); and the warnings the fit would report. Runs everything
+    up to the estimation: reading and coding, the market sizes, the propensity score, the
+    move counts against the move rules, the first joins and the join hazard's at-risk counts."""
+    _check_options(options)
+    from stateworth.estimation.panel import connect
+
+    problems: list[str] = []
+    inp = _inputs(spec, panel_path, markets_path, options, connect(options.threads), None, problems)
+    return problems, (inp.warnings if inp is not None else [])
+
+
+@dataclass
+class _Inputs:
+    """The checked inputs of a fit: the coded panel, the market sizes, the move counts (forbidden
+    moves dropped when the options say so) and the first-row table."""
+
+    panel: Panel
+    sizes: object  # MarketSizes, or None when checking without a market-size table
+    joint: JointCounts | None
+    first: np.ndarray | None
+    propensity: dict | None
+    dropped: int
+    warnings: list[str]
+
+
+_FAILED = object()
+
+
+def _inputs(spec: Spec, panel_path, markets_path, options: FitOptions, con, bar,
+            problems: list[str] | None = None) -> _Inputs | None:
+    """Read, code and check everything a fit needs before estimating. Without ``problems`` the
+    first problem raises (:func:`fit_panel`); with a list, every problem found is appended and
+    the checks go on as far as the inputs allow (:func:`check_fit_inputs`), returning None when
+    the panel itself could not be read."""
+
+    def attempt(fn):
+        try:
+            return fn()
+        except PanelError as e:
+            if problems is None:
+                raise
+            problems.extend(getattr(e, "problems", None) or [str(e)])
+            return _FAILED
+
+    def stage(name: str) -> None:
+        if bar is not None:
+            bar.set_description(f"fit: {name}")
+
+    def done() -> None:
+        if bar is not None:
+            bar.update()
+
+    status = spec.status_axis
+    if status not in (spec.axes[status].given or []):
+        attempt(lambda: _raise(PanelError(f"axes.{status}.given must include '{status}' (the current status) to fit "
+                                          "from a panel", where="spec")))
+    stage("read panel")
+    panel = attempt(lambda: load_panel(spec, str(panel_path), gaps=options.gaps, con=con))
+    if panel is _FAILED:
+        return None
+    done()
+    stage("market sizes")
+    sizes = None
+    if markets_path is not None:
+        sizes = attempt(lambda: load_markets(spec, str(markets_path), panel))
+        sizes = None if sizes is _FAILED else sizes
+    done()
+    lay = panel.layout
+    warnings = _reach_warnings(spec, panel)
+    source_rel, diag_prop, band_expr = CODED, None, None
+    if lay.band:
+        stage("propensity")
+        prop = attempt(lambda: _propensity(spec, panel))
+        if prop is _FAILED:
+            return _Inputs(panel, sizes, None, None, None, 0, warnings)
+        band_expr, next_band_expr, diag_prop = prop
+        bc = lay.col(lay.band)
+        con.execute(f"CREATE OR REPLACE TEMP VIEW banded AS SELECT *, {band_expr} AS {bc}, {next_band_expr} AS _n{bc[1:]} "
+                    f"FROM {CODED}")
+        source_rel = "banded"
+    done()
+    stage("count moves")
+    if options.engine == "spark":
+        from stateworth.estimation.spark import count_spark
+
+        joint, first_rows = count_spark(spec, panel, band_expr, lay.col(lay.band) if lay.band else None)
+    else:
+        joint = count_duckdb(spec, con, source_rel)
+        first_rows = con.execute(first_rows_sql(spec, source_rel, sequenced=True)).fetchall()
+    done()
+    dropped = 0
+    for axis in spec.draw_order:
+        res = attempt(lambda axis=axis: _check_moves(spec, panel, joint, source_rel, options.forbidden, axes=[axis]))
+        if res is not _FAILED:
+            joint, n = res
+            dropped += n
+    first = first_row_table(panel, first_rows)
+    res = attempt(lambda: _check_joins(spec, panel, first, options.forbidden))
+    if res is not _FAILED:
+        first, n = res
+        dropped += n
+    if sizes is not None:
+        for which in ("size", "low", "high"):
+            if attempt(lambda which=which: join_counts(panel, first, getattr(sizes, which), which)) is _FAILED:
+                break  # the same first rows fail alike at every size
+    return _Inputs(panel, sizes, joint, first, diag_prop, dropped, warnings)
+
+
+def _reach_warnings(spec: Spec, panel: Panel) -> list[str]:
+    """Plans no move rule leads into (:func:`plans_without_way_in`) that no panel row holds
+    either: their values would be those of states nobody reaches."""
+    closed = plans_without_way_in(spec)
+    if not closed:
+        return []
+    lay = panel.layout
+    held = {int(r[0]) for r in panel.con.execute(f"SELECT DISTINCT {lay.col(lay.status)} FROM {CODED}").fetchall()
+            if r[0] is not None}
+    return [unreachable_plan_warning(spec, plan, "and no panel row holds it") for plan in closed
+            if lay.code(lay.status, plan) not in held]
+
+
+def _check_options(options: FitOptions) -> None:
+    if options.engine not in ENGINES:
+        raise PanelError(f"unknown engine '{options.engine}'; use one of {', '.join(ENGINES)}", where="--engine")
+    if options.forbidden not in ("error", "drop"):
+        raise PanelError(f"forbidden = '{options.forbidden}'; use error or drop", where="forbidden")
+    if options.strength != "auto" and not (isinstance(options.strength, (int, float)) and options.strength > 0):
+        raise PanelError(f"prior strength {options.strength!r}: give a number > 0 or auto", where="--strength")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -237,9 +340,12 @@ def _mask_codes(spec: Spec, axis: str, joint: JointCounts) -> np.ndarray:
     return ok
 
 
-def _check_moves(spec, panel: Panel, joint: JointCounts, source: str, policy: str) -> tuple[JointCounts, int]:
+def _check_moves(spec, panel: Panel, joint: JointCounts, source: str, policy: str,
+                 axes: list[str] | None = None) -> tuple[JointCounts, int]:
+    """Moves of ``axes`` (default: every random axis) the move rules forbid: an error naming an
+    example row, or dropped with their count."""
     keep = np.ones(len(joint.n), dtype=bool)
-    for axis in spec.draw_order:
+    for axis in axes if axes is not None else spec.draw_order:
         ok = _mask_codes(spec, axis, joint)
         if ok.all():
             continue
@@ -267,8 +373,8 @@ def _forbidden_error(spec, panel: Panel, joint: JointCounts, j: int, axis: str, 
     to = spec.axis_levels(axis)[joint.nxt[j, draw.index(axis)]]
     ctx = ", ".join(f"{a}={spec.axis_levels(a)[joint.cur[j, grid.index(a)]]}" for a in grid
                     if spec.axes[a].kind == "fixed")
-    where = f"{panel.path}: row {row[0] if row else '?'}, column {axis}"
-    return PanelError(f"the move {axis} {frm} -> {to} ({ctx}) from this row to the account's next month is forbidden by the spec's move rules "
+    where = f"{row_where(panel.path, row[0]) if row else panel.path}, column {axis}"
+    return PanelError(f"the move {axis} {frm} -> {to} ({ctx}) from this row to the account's next {panel.period} is forbidden by the spec's move rules "
                       f"({total:,} such moves in the panel); correct the data, allow the move in axes.{axis}.moves / "
                       "not_sold, or fit with --drop-forbidden to drop them with a count", where=where)
 
@@ -295,7 +401,7 @@ def _check_joins(spec, panel: Panel, first: np.ndarray, policy: str) -> tuple[np
     return first, _raise(PanelError(
         f"an account's first row (its join) is in {st[s]} in market {spec.axis_levels(lay.market)[m]}, a move from "
         f"{st[nm]} the spec's move rules forbid; correct the data, allow it in axes.{lay.status}.moves, or fit with "
-        "--drop-forbidden", where=f"{panel.path}: row {row[0] if row else '?'}, column {lay.status}"))
+        "--drop-forbidden", where=f"{row_where(panel.path, row[0]) if row else panel.path}, column {lay.status}"))
 
 
 def _raise(err: Exception):

@@ -10,7 +10,8 @@ where ``tracked`` counts every account seen in the panel up to t-1 (members and 
 members). Accounts already present in the panel's first period are left-censored: they count
 as tracked, not as joins. The hazard is ``sum_t joins / sum_t at_risk``, pooled over the
 periods of one cell: the market and, when the status factor is given a cycle axis (calendar
-month), the cycle level of t-1. As counts, (stay = at_risk - joins, join plan k = joins_k)
+month), the cycle level of t-1. Periods are the spec's (months, ISO weeks, quarters or years),
+so the hazard is per period of the spec. As counts, (stay = at_risk - joins, join plan k = joins_k)
 enter the same Dirichlet posterior as every other cell. Re-running with the ``low`` and
 ``high`` sizes gives the sensitivity of the figures to the market-size range.
 """
@@ -65,7 +66,7 @@ def join_counts(panel: Panel, first: np.ndarray, sizes: np.ndarray, which: str =
         m, t = np.argwhere(joins_k[:, :, nonmem].sum(axis=2) > 0)[0]
         raise PanelError(f"accounts whose first row (period index {t + 1} of the panel, market "
                          f"{spec.axis_levels(lay.market)[m]}) is a non-member level: an account enters a panel in the "
-                         "month it first joins", where=f"{panel.path}: column {status}")
+                         f"{panel.period} it first joins", where=f"{panel.path}: column {status}")
     if (at_risk < joins_k.sum(axis=2)).any():
         m, t = np.argwhere(at_risk < joins_k.sum(axis=2))[0]
         raise PanelError(f"market '{spec.axis_levels(lay.market)[m]}': the {which} leaves fewer never-members "
@@ -83,7 +84,7 @@ def join_counts(panel: Panel, first: np.ndarray, sizes: np.ndarray, which: str =
 
 
 def hazard_summary(jc: JoinCounts, levels: list[str]) -> dict[str, float]:
-    """Pooled monthly join hazard per market level (dimensionless, per period)."""
+    """Pooled join hazard per market level (dimensionless, per period of the spec)."""
     out = {}
     for i, lv in enumerate(levels):
         risk = jc.at_risk[i].sum()

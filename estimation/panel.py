@@ -3,7 +3,9 @@
 Panel columns (CSV with a header row, or Parquet), one row per account per period:
 
 * ``account``: the account id (text or integer; personal data, never printed);
-* ``period``: ``YYYY-MM`` (monthly models);
+* ``period``: the period in the spec's ``model.period``: ``2024-01`` (month), ``2024-W05`` (ISO
+  week), ``2024-Q1`` (quarter), ``2024`` (year), or any date inside it (``2024-01-31``; a DATE or
+  TIMESTAMP column of a Parquet file), see :mod:`.periods`;
 * one column named for the status axis (e.g. ``status``) holding a level of it other than the
   never-member level (the first non-member level, e.g. ``prospect``: people who never joined
   do not appear in a panel);
@@ -13,22 +15,23 @@ Panel columns (CSV with a header row, or Parquet), one row per account per perio
   ``categorical``, at most :data:`MAX_CATEGORIES` distinct values);
 * optional ``revenue`` (money per period, a number >= 0).
 
-Counters (tenure, months since lapse) and cycles (calendar month) are *derived* from the
+Counters (tenure, periods since lapse) and cycles (calendar month) are *derived* from the
 history by :mod:`.counts`, never read from a column. Consecutive periods of an account are
 transitions; a gap in an account's history is an error (``gaps="error"``) or filled with the
 former-member level (``gaps="non_member"``; chance axes and covariates unknown there).
 
 Market-size table columns: ``market`` (levels of the spec's market axis: the fixed axis named
 ``market``, else the first fixed axis), ``size`` (addressable accounts), ``low`` and ``high``
-(a plausible range, ``low <= size <= high``), optional ``period`` (``YYYY-MM``; then one row per
-market and panel period).
+(a plausible range, ``low <= size <= high``), optional ``period`` (as in the panel; then one row
+per market and panel period). The market column may also be named after the market axis
+(``country`` for a fixed axis named country).
 
-Errors name the file, the data row (1-based, header not counted) and the column.
+Errors name the file, the data row (1-based, header not counted; for a CSV also the file line,
+row + 1) and the column.
 """
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
@@ -36,15 +39,17 @@ from typing import Literal
 import numpy as np
 
 from stateworth.errors import PanelError
+# parse_period and period_label are imported from here by simulate and fit as well
+from stateworth.estimation.periods import index_sql, parse_period, period_label, period_problem
 from stateworth.rules.spec import Spec
 
 GapPolicy = Literal["error", "non_member"]
 GAP_POLICIES = ("error", "non_member")
-PERIOD_RE = r"^[0-9]{4}-(0[1-9]|1[0-2])$"
 #: Internal table names in the DuckDB connection.
 CODED = "coded"
 #: Distinct values a categorical covariate may take.
 MAX_CATEGORIES = 50
+CSV_SUFFIXES = (".csv", ".txt", ".tsv")
 
 
 @dataclass(frozen=True)
@@ -96,7 +101,7 @@ class Panel:
     """A validated, level-coded panel held in a DuckDB connection as table ``coded``.
 
     Columns of ``coded``: ``_row`` (data row in the file, 1-based; 0 for gap fill rows), ``account``,
-    ``p`` (period index ``12 * year + month - 1``), ``g<i>`` (level code of axis at grid position i,
+    ``p`` (period index, :mod:`.periods`: ``12 * year + month - 1`` for months), ``g<i>`` (level code of axis at grid position i,
     for observed axes), ``v<j>`` (covariates, DOUBLE; a categorical one as the index of its
     value in ``cov_levels``), ``revenue`` (DOUBLE or NULL), and the
     account-history columns of :func:`sequence_sql` (previous and next row), computed once in
@@ -114,18 +119,21 @@ class Panel:
     notes: list[str] = field(default_factory=list)
     cov_levels: dict[str, list[str]] = field(default_factory=dict)  # categorical covariate -> values
 
+    @property
+    def period(self) -> str:
+        """The spec's period kind (month, week, quarter, year)."""
+        return self.layout.spec.model.period
+
     def period_label(self, p: int) -> str:
-        return period_label(p)
+        return period_label(p, self.period)
 
 
-def period_label(p: int) -> str:
-    return f"{p // 12:04d}-{p % 12 + 1:02d}"
-
-
-def parse_period(text: str, where: str) -> int:
-    if not re.match(PERIOD_RE, text or ""):
-        raise PanelError(f"period '{text}' is not YYYY-MM (e.g. 2024-01)", where=where)
-    return int(text[:4]) * 12 + int(text[5:7]) - 1
+def row_where(path: str, row: int) -> str:
+    """``file: row R`` for a data row, with the file line too for a CSV (``row R (line R + 1)``:
+    the header is line 1)."""
+    if Path(path).suffix.lower() in CSV_SUFFIXES:
+        return f"{path}: row {row} (line {row + 1})"
+    return f"{path}: row {row}"
 
 
 def connect(threads: int | None = None):
@@ -152,7 +160,7 @@ def _source(path: str, con) -> tuple[str, str]:
     suffix = p.suffix.lower()
     if suffix in (".parquet", ".pq"):
         return f"(SELECT file_row_number + 1 AS _row, * EXCLUDE (file_row_number) FROM read_parquet({lit}, file_row_number = true))", "parquet"
-    if suffix in (".csv", ".txt", ".tsv"):
+    if suffix in CSV_SUFFIXES:
         import duckdb
 
         name = f"_csv_{abs(hash(str(p.resolve()))) % 10 ** 12}"
@@ -208,7 +216,7 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
     if missing:
         have = ", ".join(c for c in cols if c != "_row")
         return [(path, f"missing required column(s) {', '.join(missing)}; the file has {have} "
-                       f"(see README 'Panel format')")], con
+                       f"(see README 'Fitting from an account panel')")], con
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     probs: list[tuple[str, str]] = []
 
@@ -227,14 +235,14 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
                 continue
             row = _first(con, f"SELECT _row, CAST({_q(column)} AS VARCHAR) FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
             more = f" ({n:,} rows in all)" if n > 1 else ""
-            probs.append((f"{path}: row {row[0]}, column {column}", msg(row[1]) + more))
+            probs.append((f"{row_where(path, row[0])}, column {column}", msg(row[1]) + more))
         checks.clear()
 
     for c in ["account", "period"] + list(lay.observed):
         example(f"{_q(c)} IS NULL", c, lambda v: "empty value; every row needs one")
-    per = _period_text(cols)
-    example(f"{_q('period')} IS NOT NULL AND NOT regexp_matches({per}, '{PERIOD_RE}')", "period",
-            lambda v: f"period '{v}' is not YYYY-MM (e.g. 2024-01)")
+    kind = spec.model.period
+    example(f"{_q('period')} IS NOT NULL AND ({index_sql(_q('period'), cols['period'], kind)}) IS NULL", "period",
+            lambda v: period_problem(v, kind))
     for ax in lay.observed:
         lv = spec.axis_levels(ax)
         allowed = ", ".join(_lit(x) for x in lv)
@@ -260,21 +268,6 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
                 lambda v: f"revenue {v} is negative or not finite; revenue is money received, >= 0")
     run_checks()
     return probs, con
-
-
-def _period_text(cols: dict[str, str]) -> str:
-    """The period column as ``YYYY-MM`` text (a DATE or TIMESTAMP column is formatted)."""
-    ptype = cols["period"].upper()
-    if ptype.startswith("DATE") or ptype.startswith("TIMESTAMP"):
-        return f"strftime({_q('period')}, '%Y-%m')"
-    return f"CAST({_q('period')} AS VARCHAR)"
-
-
-def _period_index(cols: dict[str, str]) -> str:
-    """``12 * year + month - 1`` of a valid period, NULL otherwise."""
-    per = _period_text(cols)
-    return (f"CASE WHEN regexp_matches({per}, '{PERIOD_RE}') THEN CAST(substr({per}, 1, 4) AS INTEGER) * 12 "
-            f"+ CAST(substr({per}, 6, 2) AS INTEGER) - 1 END")
 
 
 def _coded_flags(con, lay: Layout, cols: dict[str, str]) -> bool:
@@ -327,12 +320,12 @@ def history_problems(con, lay: Layout, path: str) -> tuple[list[tuple[str, str]]
         row = _first(con, f"SELECT _row, p FROM {CODED} WHERE {cond} ORDER BY _row LIMIT 1")
         more = f" ({n:,} rows in all)" if n > 1 else ""
         if k == 0:
-            probs.append((f"{path}: row {row[0]}, columns account, period",
-                          f"a second row for the same account and period {period_label(row[1])}; one row per account "
-                          f"per period{more}"))
+            probs.append((f"{row_where(path, row[0])}, columns account, period",
+                          f"a second row for the same account and period {period_label(row[1], lay.spec.model.period)}; "
+                          f"one row per account per {lay.spec.model.period}{more}"))
         else:
             a = fixed[k - 1]
-            probs.append((f"{path}: row {row[0]}, column {a}",
+            probs.append((f"{row_where(path, row[0])}, column {a}",
                           f"{a} changes within an account's history; {a} is a fixed axis and never changes{more}"))
     return probs, bool(counts[-1])
 
@@ -347,9 +340,6 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
     the file, row and column of the first problem (``problems`` lists all found)."""
     if gaps not in GAP_POLICIES:
         raise PanelError(f"unknown gap policy '{gaps}'; use one of {', '.join(GAP_POLICIES)}", where="gaps")
-    if spec.model.period != "month":
-        raise PanelError(f"panels are monthly (period YYYY-MM); the spec's model.period is '{spec.model.period}'",
-                         where="model.period")
     path = str(path)
     con = con or connect()
     lay = Layout.of(spec)
@@ -359,7 +349,7 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
         raise _panel_error(panel_problems(spec, path, con)[0])
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     # code first, validate on the codes: a clean file is read once, a bad one twice
-    sel = ["_row", "account", f"{_period_index(cols)} AS p"]
+    sel = ["_row", "account", f"{index_sql(_q('period'), cols['period'], spec.model.period)} AS p"]
     for ax in lay.observed:
         sel.append(f"{_case_codes(_q(ax), spec.axis_levels(ax))} AS {lay.col(ax)}")
     cov_levels = {c: _categories(con, c, path) for c in lay.categorical}
@@ -384,14 +374,15 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
         raise _panel_error(hist)
     gap = gap_example(con) if has_gaps else None
     if gap is not None:
+        kind = spec.model.period
         if gaps == "error":
-            raise PanelError(f"a gap in the account's history: no row for {period_label(gap[1] + 1)}"
-                             f"{'..' + period_label(gap[2] - 1) if gap[2] - gap[1] > 2 else ''} before "
-                             f"{period_label(gap[2])}; add the missing months or fit with gaps = non_member "
-                             "(a gap is then a former-member period)", where=f"{path}: row {gap[0]}, column period")
+            raise PanelError(f"a gap in the account's history: no row for {period_label(gap[1] + 1, kind)}"
+                             f"{'..' + period_label(gap[2] - 1, kind) if gap[2] - gap[1] > 2 else ''} before "
+                             f"{period_label(gap[2], kind)}; add the missing {kind}s or fit with --gaps non_member "
+                             "(a gap is then a former-member period)", where=f"{row_where(path, gap[0])}, column period")
         if not lay.former_levels:
             raise PanelError("gaps cannot be filled as non-member periods: the status axis has no former-member "
-                             "level", where=f"{path}: row {gap[0]}, column period")
+                             "level", where=f"{row_where(path, gap[0])}, column period")
         filled = fill_gaps(con, lay, base)
     n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
@@ -476,14 +467,18 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
                        "(kind = \"fixed\", named market)")]
     rel, _ = _source(path, con)
     cols = _columns(con, rel, path)
-    missing = [c for c in ("market", "size", "low", "high") if c not in cols]
+    # the market column is named `market`, or after the market axis itself (`country`)
+    mcol = lay.market if lay.market in cols else "market"
+    named = "market" if lay.market == "market" else f"{lay.market} (or market)"
+    missing = [c if c != "market" else named for c in (mcol, "size", "low", "high") if c not in cols]
     if missing:
-        return [(path, f"missing required column(s) {', '.join(missing)}; columns are market, size, low, high "
+        return [(path, f"missing required column(s) {', '.join(missing)}; columns are {named}, size, low, high "
                        "and optionally period")]
     con.execute(f"CREATE OR REPLACE TEMP VIEW mraw AS SELECT * FROM {rel}")
     by_period = "period" in cols
-    rows = con.execute("SELECT _row, CAST(market AS VARCHAR), CAST(size AS VARCHAR), CAST(low AS VARCHAR), "
+    rows = con.execute(f"SELECT _row, CAST({_q(mcol)} AS VARCHAR), CAST(size AS VARCHAR), CAST(low AS VARCHAR), "
                        f"CAST(high AS VARCHAR), {'CAST(period AS VARCHAR)' if by_period else 'NULL'} FROM mraw ORDER BY _row").fetchall()
+    kind = spec.model.period
     levels = spec.axis_levels(lay.market)
     T = panel.p_max - panel.p_min + 1
     M = len(levels)
@@ -492,9 +487,9 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     high = np.full((M, T), np.nan)
     probs: list[tuple[str, str]] = []
     for r, mk, *vals, per in rows:
-        where = f"{path}: row {r}"
+        where = row_where(path, r)
         if mk not in levels:
-            probs.append((f"{where}, column market", f"'{mk}' is not a level of {lay.market}; levels are {', '.join(levels)}"))
+            probs.append((f"{where}, column {mcol}", f"'{mk}' is not a level of {lay.market}; levels are {', '.join(levels)}"))
             continue
         nums = []
         for name, v in zip(("size", "low", "high"), vals):
@@ -513,7 +508,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
             continue
         if by_period:
             try:
-                t = parse_period(per, f"{where}, column period") - panel.p_min
+                t = parse_period(per, f"{where}, column period", kind) - panel.p_min
             except PanelError as e:
                 probs.append((e.where, e.message))
                 continue
@@ -524,7 +519,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
             ts = list(range(T))
         i = levels.index(mk)
         if not np.isnan(size[i, ts[0]]):
-            probs.append((f"{where}, column market", f"a second row for market '{mk}'"
+            probs.append((f"{where}, column {mcol}", f"a second row for market '{mk}'"
                           + (f" and period {per}" if by_period else "")))
             continue
         size[i, ts], low[i, ts], high[i, ts] = s, lo, hi
@@ -534,12 +529,12 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     for code, pmin in seen:
         t = int(pmin) - panel.p_min
         if np.isnan(size[code]).all():
-            probs.append((f"{path}, column market", f"market '{levels[code]}' appears in the panel ({panel.path}) but "
+            probs.append((f"{path}, column {mcol}", f"market '{levels[code]}' appears in the panel ({panel.path}) but "
                           "has no row in the size table; add its addressable size"))
         elif np.isnan(size[code, t:]).any():
             bad = t + int(np.argmax(np.isnan(size[code, t:])))
             probs.append((f"{path}, column period", f"no size for market '{levels[code]}' in period "
-                          f"{period_label(panel.p_min + bad)}, which the panel covers"))
+                          f"{period_label(panel.p_min + bad, kind)}, which the panel covers"))
     if probs:
         return probs
     # tracked accounts by market and period must fit inside the addressable size
@@ -554,7 +549,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
         if over.any():
             i, t = np.argwhere(over)[0]
             probs.append((f"{path}, column {which}", f"market '{levels[i]}' has {which} {arr[i, t]:g} but the panel already "
-                          f"tracks {int(tracked[i, t]):,} accounts there by {period_label(panel.p_min + t)}; the addressable "
+                          f"tracks {int(tracked[i, t]):,} accounts there by {period_label(panel.p_min + t, kind)}; the addressable "
                           "size counts every account that could join, members and former members included"))
     if probs:
         return probs
@@ -563,8 +558,11 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
 
 
 def check_panel(spec: Spec, panel_path: str, markets_path: str | None, *, gaps: GapPolicy = "error") -> list[str]:
-    """Every problem found in a panel (and its market-size table) against a spec, as
-    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine)."""
+    """The problems found reading a panel (and its market-size table) against a spec, as
+    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine).
+    The checks a fit adds on top (forbidden moves and joins, the propensity score, the join
+    hazard's at-risk counts) are in :func:`stateworth.estimation.fit.check_fit_inputs`, which
+    ``stateworth check --panel`` runs."""
     try:
         panel = load_panel(spec, str(panel_path), gaps=gaps)
     except PanelError as e:

@@ -35,6 +35,8 @@ from stateworth.rules.counters import counter_index
 from stateworth.estimation.panel import Layout, parse_period, period_label
 
 COVARIATE_NOISE = 0.15
+#: The first simulated period unless told: the period of the spec's kind that holds this date.
+DEFAULT_START = "2024-01-01"
 #: Classes of a simulated categorical covariate and the cuts of the underlying measurement.
 CATEGORY_NAMES = ["low", "mid", "high", "top"]
 CATEGORY_EDGES = [-0.75, 0.0, 0.75]
@@ -58,9 +60,13 @@ def _draw(rng: np.random.Generator, probs: np.ndarray) -> np.ndarray:
     return out.astype(np.int64)
 
 
-def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start: str = "2024-01",
+def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start: str | None = None,
                    tables: dict[str, np.ndarray] | None = None) -> Simulation:
-    """Simulate ``periods`` months of ``population`` addressable people (see the module doc)."""
+    """Simulate ``periods`` periods of the spec (months, ISO weeks, quarters or years) of
+    ``population`` addressable people (see the module doc). ``start``: the first panel period,
+    a label of the spec's period or a date in it (default: the first period of 2024); the
+    panel's ``period`` column holds the spec's labels (``2024-01``, ``2024-W01``, ``2024-Q1``,
+    ``2024``)."""
     import pyarrow as pa
 
     if population < 1 or periods < 2:
@@ -76,7 +82,8 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
     st = spec.status_axis
     st_levels = spec.axis_levels(st)
     nm = lay.code(st, lay.never_member)
-    p0 = parse_period(start, "--start")
+    period = spec.model.period
+    p0 = parse_period(start if start is not None else DEFAULT_START, "--start", period)
     N = int(population)
     cur: dict[str, np.ndarray] = {}
     for a in grid:
@@ -126,7 +133,7 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
     arrays = {"account": pa.array(cols["account"]),
               "period": pa.DictionaryArray.from_arrays(
                   pa.array((cols["p"] - p0).astype(np.int32)),
-                  pa.array([period_label(p0 + t) for t in range(periods)]))}
+                  pa.array([period_label(p0 + t, period) for t in range(periods)]))}
     for a in lay.observed:
         arrays[a] = pa.DictionaryArray.from_arrays(pa.array(cols[a].astype(np.int32)), pa.array(spec.axis_levels(a)))
     if lay.band:

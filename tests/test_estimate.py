@@ -104,7 +104,7 @@ def test_forbidden_move_error_and_drop(spec, sim_files, tmp_path):
         fit_panel(spec, str(bad), m, FitOptions(draws=0))
     msg = str(ei.value)
     assert "forbidden.csv: row" in msg and "column status" in msg and "forbidden" in msg
-    row = int(msg.split("row ")[1].split(",")[0])
+    row = int(msg.split("row ")[1].split(" ")[0])  # "row R (line R + 1), column ..."
     assert df.iloc[row - 1]["account"] == a  # the example row is one of the changed moves
     res = fit_panel(spec, str(bad), m, FitOptions(draws=0, forbidden="drop"))
     assert res.diagnostics["forbidden_dropped"] >= 1

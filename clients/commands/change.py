@@ -15,9 +15,9 @@ weighted over a cohort (default: every state in the long-run mix). A product tea
 engagement lift worth" question.
 
 example:
-  stateworth change demo-out/model --axis engagement --to regular --delta 0.03 \\
+  stateworth change demo-out/models/fitted --axis engagement --to regular --delta 0.03 \\
       --when next.status=solo,duo,studio --when engagement=light --cohort status=solo,duo,studio
-  stateworth change demo-out/model --axis status --to lapsed --delta -0.01 \\
+  stateworth change demo-out/models/fitted --axis status --to lapsed --delta -0.01 \\
       --when status=solo --cohort status=solo --stream margin --json
 """
 

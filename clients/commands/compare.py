@@ -21,13 +21,13 @@ kinds:
   states        the state before, and --after AXIS=LEVEL ... overrides for the state after
 
 example:
-  stateworth compare demo-out/model acquisition market=harbor tenure=0 month=jan \\
+  stateworth compare demo-out/models/fitted acquisition market=harbor tenure=0 month=jan \\
       status=prospect engagement=none --plan solo
-  stateworth compare demo-out/model plan-change market=upland tenure=4 month=mar \\
+  stateworth compare demo-out/models/fitted plan-change market=upland tenure=4 month=mar \\
       status=solo engagement=regular --plan duo --stream margin
-  stateworth compare demo-out/model engagement market=coast tenure=2 month=jan \\
+  stateworth compare demo-out/models/fitted engagement market=coast tenure=2 month=jan \\
       status=duo engagement=light --to regular
-  stateworth compare demo-out/model states market=harbor tenure=0 month=jan status=prospect \\
+  stateworth compare demo-out/models/fitted states market=harbor tenure=0 month=jan status=prospect \\
       engagement=none --after status=duo --json
 """
 

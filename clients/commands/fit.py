@@ -13,14 +13,16 @@ parent cell; never-member join rates come from first joins and the market sizes;
 band axis is fitted from its covariates. Nothing is written when fitting fails.
 
 example:
+  stateworth fit examples/fitness.toml --panel demo-out/panel/fitted.parquet \\
+      --markets demo-out/panel/fitted.markets.csv -o out/model
   stateworth simulate examples/fitness.toml --accounts 20000 -o out/panel.parquet
-  stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model
+  stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model2
 """
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("spec", help="the model spec (TOML)")
-    p.add_argument("--panel", required=True, help="account panel (.csv or .parquet; see README 'Panel format')")
+    p.add_argument("--panel", required=True, help="account panel (.csv or .parquet; see README 'Fitting from an account panel')")
     p.add_argument("--markets", required=True, help="market-size table (market, size, low, high[, period])")
     p.add_argument("-o", "--output", required=True, help="model directory to write")
     p.add_argument("--strength", default="auto",
@@ -28,7 +30,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--drop-forbidden", action="store_true",
                    help="drop moves the spec's rules forbid (counted in the diagnostics) instead of failing")
     p.add_argument("--gaps", default="error", choices=["error", "non_member"],
-                   help="a missing month inside an account's history: an error (default) or a former-member month")
+                   help="a missing period inside an account's history: an error (default) or a former-member period")
     p.add_argument("--draws", type=int, default=100, help="posterior draws of every table for intervals (default 100)")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior draws (default 0)")
     p.add_argument("--engine", default="duckdb", choices=["duckdb", "spark"],

@@ -15,8 +15,8 @@ percentage point on it is worth, the other allowed entries of its row scaled dow
 Marginal figures are local: use `stateworth change` for the exact effect of a finite change.
 
 example:
-  stateworth marginal demo-out/model --top 10
-  stateworth marginal demo-out/model --cohort status=solo,duo,studio --stream margin --json
+  stateworth marginal demo-out/models/fitted --top 10
+  stateworth marginal demo-out/models/fitted --cohort status=solo,duo,studio --stream margin --json
 """
 
 

@@ -19,8 +19,8 @@ given the state); not accounting figures; the discount rate and policy are finan
 examples:
   stateworth query models
   stateworth query value fitness-demo market=harbor tenure=0 month=jan status=prospect engagement=none
-  stateworth query contrast fitness-demo --acquisition solo market=harbor tenure=0 month=jan \\
-      status=prospect engagement=none --level 0.9
+  stateworth query contrast fitness-demo market=harbor tenure=0 month=jan status=prospect \\
+      engagement=none --acquisition solo --level 0.9
   stateworth query marginal fitness-demo --cohort status=solo,duo --top 10
   stateworth query --admin-token-file admin.token reload
 """

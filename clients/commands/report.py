@@ -14,8 +14,8 @@ fitted from a panel), the solve statistics, and the model's assumptions and caut
 charts are also written to OUT_DIR/charts/, the figures to OUT_DIR/report.json.
 
 example:
-  stateworth report demo-out/model -o demo-out/report
-  stateworth report demo-out/model -o demo-out/report-margin --stream margin
+  stateworth report demo-out/models/fitted -o out/report
+  stateworth report demo-out/models/fitted -o out/report-margin --stream margin
 """
 
 

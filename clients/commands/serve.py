@@ -25,8 +25,8 @@ throughput. Each worker holds every model in its own memory.
 Answers are model-based estimates under the model's causal assumptions; not accounting figures.
 
 example:
-  stateworth serve models/ --port 50051 --token-file query.token --admin-token-file admin.token
-  stateworth serve models/ --workers 2 --metrics-port 9464
+  stateworth serve demo-out/models --port 50051 --token-file query.token --admin-token-file admin.token
+  stateworth serve demo-out/models --workers 2 --metrics-port 9464
 """
 
 

@@ -8,12 +8,14 @@ NAME = "simulate"
 HELP = "draw a synthetic account panel (and its market-size table) from a spec's known tables"
 DESCRIPTION = """Simulate an account panel from a spec whose factor tables are written out (the ground
 truth): ACCOUNTS addressable people spread over the markets, all never-members at the start; those
-who join enter the panel in the month they first join and stay in it after lapsing, so the panel
+who join enter the panel in the period they first join and stay in it after lapsing, so the panel
 holds members and former members, and never-members never appear. A propensity band axis drives
 joining and lapsing and its covariates measure it (they confound membership).
 
-The panel goes to -o (.parquet, or .csv); the market-size table (market, size, low, high: the
-true population per market, low/high at -/+ 10 %) is written beside it as <stem>.markets.csv.
+Periods are the spec's model.period: the panel's period column holds 2024-01 (month), 2024-W01
+(ISO week), 2024-Q1 (quarter) or 2024 (year) labels. The panel goes to -o (.parquet, or .csv);
+the market-size table (market, size, low, high: the true population per market, low/high at
+-/+ 10 %) is written beside it as <stem>.markets.csv.
 
 example:
   stateworth simulate examples/fitness.toml --accounts 20000 --periods 24 --seed 1 -o out/panel.parquet
@@ -24,9 +26,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("spec", help="a spec (TOML) with written tables for every random axis")
     p.add_argument("--accounts", type=int, default=20000, help="addressable people to simulate (default 20000); "
                    "the panel holds those who join")
-    p.add_argument("--periods", type=int, default=24, help="months to simulate (default 24)")
+    p.add_argument("--periods", type=int, default=24,
+                   help="periods to simulate, in the spec's model.period (default 24)")
     p.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
-    p.add_argument("--start", default="2024-01", help="first panel month, YYYY-MM (default 2024-01)")
+    p.add_argument("--start", default=None,
+                   help="first panel period: a label of the spec's period (2024-01, 2024-W05, 2024-Q1, 2024) or a "
+                        "date in it (default: the first period of 2024)")
     p.add_argument("-o", "--output", required=True, help="panel file to write (.parquet or .csv)")
 
 
@@ -38,7 +43,7 @@ def run(args: argparse.Namespace) -> int:
     if args.accounts < 1:
         raise SpecError(f"--accounts {args.accounts}: give a positive number of people", where="--accounts")
     if args.periods < 2:
-        raise SpecError(f"--periods {args.periods}: give at least 2 months", where="--periods")
+        raise SpecError(f"--periods {args.periods}: give at least 2 periods", where="--periods")
     spec = load_spec(args.spec)
     missing = [a for a in spec.draw_order if not spec.axes[a].table]
     if missing:

@@ -18,8 +18,8 @@ larger ones by preconditioned GMRES on the structured operator (JAX; its compile
 in a per-user cache, see README "Solving").
 
 example:
-  stateworth solve demo-out/model
-  stateworth solve demo-out/model --force --json
+  stateworth solve demo-out/models/fitted
+  stateworth solve demo-out/models/fitted --force --json
   stateworth solve examples/fitness.toml --save out/model
 """
 
