@@ -75,6 +75,9 @@ class FrozenLayout:
     #: no move between two of them and the status leads the key (then the Galerkin matrix is
     #: block-diagonal by status and each status's part is inverted alone), else 1
     split: int = 1
+    #: per kept cycle: einsum subscripts (current, next) and its size; its operand is the
+    #: one-period rotation ``S[c, (c + 1) mod size] = 1``
+    shifts: tuple[tuple[str, int], ...] = ()
 
 
 def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
@@ -96,15 +99,18 @@ def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
         return None
     from stateworth.solver.preconditioner import persistence
 
+    # cycles first, for the reason the main coarse key keeps them (a rotation's modes are slow):
+    # a frozen cluster averaged over the calendar cannot follow a seasonal joining rate
+    cycles = [a.name for a in grid.axes if a.kind == "cycle"]
     chance = sorted((a.name for a in grid.axes if a.kind == "chance"), key=lambda a: -persistence(model, a))
     kept, size = [], len(frozen)
-    for a in chance:
+    for a in cycles + chance:
         if size * grid.axis(a).size <= max_block:
             kept.append(a)
             size *= grid.axis(a).size
     letters = iter(string.ascii_letters)
     cur = {a.name: next(letters) for a in grid.axes}
-    nxt = {a.name: next(letters) for a in grid.axes if a.kind in ("status", "chance")}
+    nxt = {a.name: next(letters) for a in grid.axes if a.kind in ("status", "chance") or a.name in kept}
     for c in counters:  # a counter that stays keeps its letter
         nxt[c] = cur[c]
     st_f, st_nf = next(letters), next(letters)
@@ -117,16 +123,20 @@ def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
         idx = counter_index(spec, c)
         stay = (idx == np.arange(idx.shape[0])[:, None, None]).astype(np.float64)
         masks.append((cur[c] + cur[st] + nxt[st], tuple(map(tuple, stay.reshape(stay.shape[0], -1)))))
+    shifts = tuple((cur[a] + nxt[a], grid.axis(a).size) for a in kept if grid.axis(a).kind == "cycle")
     block_axes = [a.name for a in grid.axes if a.kind in ("fixed", "counter")]  # grid order
-    key_cur = [st_f if a.name == st else cur[a.name] for a in grid.axes if a.name == st or a.name in kept]
-    key_nxt = [st_nf if a.name == st else nxt[a.name] for a in grid.axes if a.name == st or a.name in kept]
+    # the status leads the key (then the kept axes in grid order), so that blocks split by status
+    key_axes = [st] + [a.name for a in grid.axes if a.name in kept]
+    key_cur = [st_f if a == st else cur[a] for a in key_axes]
+    key_nxt = [st_nf if a == st else nxt[a] for a in key_axes]
     out = "".join(cur[a] for a in block_axes) + "".join(key_cur) + "".join(key_nxt)
-    mentioned = set("".join(subs) + "".join(m[0] for m in masks))
+    mentioned = set("".join(subs) + "".join(m[0] for m in masks) + "".join(s for s, _ in shifts))
     ones = tuple((cur[a], grid.axis(a).size) for a in block_axes + [k for k in kept]
                  if cur[a] not in mentioned)
     mentioned |= {o[0] for o in ones}
     # the status one-hots pick the frozen levels of the current and next status
-    parts = list(subs) + [m[0] for m in masks] + [cur[st] + st_f, nxt[st] + st_nf] + [o[0] for o in ones]
+    parts = list(subs) + [m[0] for m in masks] + [s for s, _ in shifts] + [cur[st] + st_f, nxt[st] + st_nf] + \
+        [o[0] for o in ones]
     expr = ",".join(parts) + "->" + out
     denom = 1.0
     for a in grid.axes:  # averaged current axes that the operands mention
@@ -137,24 +147,25 @@ def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
     averaged = [a for a in grid.axes if a.kind not in ("fixed", "counter") and a.name != st and a.name not in kept]
     restrict_denom = float(np.prod([a.size for a in averaged])) if averaged else 1.0
     p_out = "".join(cur[a.name] for a in grid.axes if a not in averaged)
+    # prolong receives the aggregates back in grid order (see FrozenCoarse.prolong)
+    p_in = "".join(st_f if a.name == st else cur[a.name] for a in grid.axes if a not in averaged)
     prolong_shape = tuple(1 if a in averaged else a.size for a in grid.axes)
     blocks = int(np.prod([grid.axis(a).size for a in block_axes], dtype=np.int64))
     if blocks <= 1:
         return None
     span = (frozen[0], frozen[-1] + 1) if frozen == tuple(range(frozen[0], frozen[-1] + 1)) else None
     kept_dims = [a.name for a in grid.axes if a not in averaged]
-    order = [a for a in kept_dims if a in block_axes] + [a for a in kept_dims if a not in block_axes]
+    order = [a for a in kept_dims if a in block_axes] + key_axes
     perm = tuple(kept_dims.index(a) for a in order)
     averaged_pos = tuple(grid.position(a.name) for a in averaged)
     levels = spec.axis_levels(st)
     moves = spec.axes[st].moves or {}
     apart = all(levels[j] not in moves.get(levels[i], levels) for i in frozen for j in frozen if i != j)
-    leads = next(a.name for a in grid.axes if a.name == st or a.name in kept) == st
-    split = len(frozen) if apart and leads and len(frozen) > 1 else 1
+    split = len(frozen) if apart and len(frozen) > 1 else 1
     return FrozenLayout(grid.shape, grid.position(st), frozen, tuple(a.name for a in grid.axes), tuple(kept),
                         tuple(faxes), tuple(subs), tuple(masks), ones, expr, denom,
-                        f"{g},{cur[st]}{st_f}->{r_out}", restrict_denom, f"{r_out},{cur[st]}{st_f}->{p_out}",
-                        prolong_shape, blocks, size, span, averaged_pos, perm, split)
+                        f"{g},{cur[st]}{st_f}->{r_out}", restrict_denom, f"{p_in},{cur[st]}{st_f}->{p_out}",
+                        prolong_shape, blocks, size, span, averaged_pos, perm, split, shifts)
 
 
 def _onehot(layout: FrozenLayout, dtype) -> jax.Array:
@@ -171,6 +182,7 @@ def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.
     ops = [jnp.asarray(tables[a], dtype=jnp.float64) for a in layout.factor_axes]
     S = layout.grid_shape[layout.status_pos]
     ops += [jnp.asarray(np.array(m, dtype=np.float64).reshape(len(m), S, S)) for _, m in layout.masks]
+    ops += [jnp.asarray(np.roll(np.eye(n), 1, axis=1)) for _, n in layout.shifts]
     h = _onehot(layout, jnp.float64)
     ops += [h, h]
     ops += [jnp.ones(n) for _, n in layout.ones]

@@ -231,6 +231,7 @@ def _solve_jax(model, compiled, op, r, beta, names, chosen, *, tol, x0, transpos
     xj = place(np.zeros_like(r) if x0 is None else np.asarray(x0, dtype=np.float64).reshape(n, k))
     bound = None
     bracket = None
+    per_column = None
     if chosen == "dense":
         from stateworth.solver.dense import solve_dense
         x, res_vec, status = solve_dense(A, rj, beta)
@@ -254,10 +255,11 @@ def _solve_jax(model, compiled, op, r, beta, names, chosen, *, tol, x0, transpos
             raise QueryError("the two-level preconditioner needs a compiled model, not a bare operator",
                              field="preconditioner")
         low = pc is not None and preconditioner_precision != "float64"
-        x, iterations, applies, residual, status = kernels.gmres_jit(A, rj, xj, beta, tol, restart, mi, pc,
-                                                                     A.astype(jnp.float32) if low else None)
+        x, iterations, applies, residual, status, most = kernels.gmres_jit(A, rj, xj, beta, tol, restart, mi, pc,
+                                                                           A.astype(jnp.float32) if low else None)
         x = np.asarray(x)
         iterations, applies, residual, status = int(iterations), int(applies), float(residual), Status(int(status))
+        per_column = int(most)
     else:  # value_iteration
         mi = max_iter or 50000
         x, lower, upper, iterations, residual, status, half = kernels.vi_jit(A, rj, xj, beta, tol, mi, stochastic)
@@ -273,7 +275,7 @@ def _solve_jax(model, compiled, op, r, beta, names, chosen, *, tol, x0, transpos
     sol = Solution(values=x, streams=names, method=chosen, status=status, iterations=iterations,
                    operator_applies=applies, residual=residual, bound=bound,
                    seconds=time.perf_counter() - t0, beta=beta, transpose=transpose, notes=notes,
-                   bracket=bracket)
+                   bracket=bracket, iterations_per_column=per_column)
     if raise_on_failure:
         sol.raise_for_status(tol)
     return sol

@@ -206,7 +206,7 @@ def test_flexible_gmres_converges_with_a_changing_preconditioner():
         return jax.jit(lambda b: gmres(lambda v: Md @ v, b, jnp.zeros_like(b), tol=1e-12, restart=30, max_iter=500,
                                        precond=precond, flexible=flexible))(jnp.asarray(b))
 
-    x, it, ap, res, st = run(True)
+    x, it, ap, res, st, _ = run(True)
     assert int(st) == 0 and float(res) <= 1e-12
     np.testing.assert_allclose(np.asarray(x)[:, 0], ref, rtol=1e-9)
     # plain right-preconditioned GMRES assumes one fixed M: its updates lose accuracy, it needs more

@@ -113,8 +113,8 @@ def _gmres_draws(op, pc, stacked, rhs, x0, beta, base, *, tol, restart, max_iter
             # the solver's float32 preconditioner under flexible GMRES, as in a single solve
             return gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter,
                          precond=low_precision(pcd, A, A.astype(jnp.float32), beta), precond_cost=pcd.cost,
-                         flexible=True, z_dtype=jnp.float32)
-        x, it, ap, res, st = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter)
+                         flexible=True, z_dtype=jnp.float32)[:5]
+        x, it, ap, res, st, _ = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter)
         return x, it, ap, res, st
 
     return jax.lax.map(one, (stacked, rhs), batch_size=batch)

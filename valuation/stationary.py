@@ -43,7 +43,7 @@ def _bordered_gmres(op, u, blocks, tol, max_iter):
                 s = jnp.sum(x.reshape(blocks, -1), axis=1)
                 return x - op.transpose().mv(x) + u * jnp.repeat(s, n // blocks)
 
-            x, it, ap, res, st = gmres(matvec, u[:, None], u[:, None], tol=tol, restart=60, max_iter=max_iter)
+            x, it, ap, res, st, _ = gmres(matvec, u[:, None], u[:, None], tol=tol, restart=60, max_iter=max_iter)
             return x[:, 0], res, st
 
         _BORDERED["fn"] = fn
