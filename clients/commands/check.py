@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import argparse
+
+from stateworth.clients.commands._sources import add_table_arguments
 import sys
 
 NAME = "check"
@@ -10,17 +12,20 @@ HELP = "validate a spec (and a panel): every problem at once, with where and how
 DESCRIPTION = """Validate a model spec and compile it (tables, move rules, grid size).
 
 Every problem is listed with its key path and what would be right; exit 1 if any.
-With --panel (and --markets) the account panel is checked against the spec too.
+With --panel (and --markets) the account panel is checked against the spec too: files, or
+tables in a PostgreSQL database (--panel postgresql://USER@HOST:PORT/DB --panel-table TABLE).
 
 example:
   stateworth check examples/fitness.toml
+  stateworth check examples/fitness.toml --panel postgresql://analyst@db.example:5432/crm --panel-table panel \
+      --markets postgresql://analyst@db.example:5432/crm --markets-table market_sizes
 """
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("spec", help="the model spec (TOML)")
-    p.add_argument("--panel", help="an account panel (CSV or Parquet) to check against the spec")
-    p.add_argument("--markets", help="the market-size table that goes with --panel")
+    add_table_arguments(p, "panel", "an account panel (CSV or Parquet) to check against the spec")
+    add_table_arguments(p, "markets", "the market-size table that goes with --panel")
     p.add_argument("--json", action="store_true", help="print the result as JSON")
 
 
@@ -50,12 +55,15 @@ def run(args: argparse.Namespace) -> int:
                 summary.update(note="factor tables come from a panel (`stateworth fit`)")
         except StateworthError as e:
             problems.append(str(e))
-        if args.panel:
-            try:
+        try:
+            from stateworth.clients.commands._sources import table_source
+
+            panel, markets = table_source(args, "panel"), table_source(args, "markets")
+            if panel is not None:
                 from stateworth.estimation.panel import check_panel  # estimation layer
-                problems.extend(check_panel(spec, args.panel, args.markets))
-            except StateworthError as e:
-                problems.append(str(e))
+                problems.extend(check_panel(spec, panel, markets))
+        except StateworthError as e:
+            problems.append(str(e))
     summary["problems"] = problems
     if args.json:
         print(json.dumps(summary, indent=2))
