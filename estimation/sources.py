@@ -23,7 +23,8 @@ PostgreSQL type. The password comes only from libpq's own mechanisms, ``PGPASSWO
 password file (``~/.pgpass``, ``PGPASSFILE``); a URL that carries one is refused. Errors name
 the database (URL without password), the table or the option of the query, and the column; a
 server message is repeated only for errors of the statement's text or of access (SQLSTATE
-classes 08, 28, 3D, 3F, 42), never for errors about a value (class 22 names the value).
+classes 08, 25, 28, 3D, 3F, 42), never for errors about a value (class 22 names the value).
+The session is read-only: a query with a side effect is refused by the server.
 
 Row numbers of a database source count the rows in the order the server sent them (a table's
 physical order; give a query with ORDER BY for a fixed order).
@@ -46,7 +47,7 @@ SCHEMES = ("postgresql", "postgres")
 #: Seconds libpq waits for a server before giving up (unless the URL says connect_timeout).
 CONNECT_TIMEOUT_S = 10
 #: SQLSTATE classes whose server message names no stored value and is repeated to the user.
-_SAFE_CLASSES = ("08", "28", "3D", "3F", "42")
+_SAFE_CLASSES = ("08", "25", "28", "3D", "3F", "42")
 _TEXT = ("text", "varchar", "bpchar", "name", "citext")
 _INTS = ("int2", "int4", "int8")
 _FLOATS = ("float4", "float8")
@@ -226,12 +227,16 @@ def read_arrow(source: str | Path | TableSource, columns: Mapping[str, Column] |
     import adbc_driver_manager
 
     inner = src.query if src.query is not None else f"SELECT * FROM {src.table}"
+    # the query on lines of its own: a trailing -- comment in it ends before the closing parenthesis
+    wrapped = f"(\n{inner}\n) AS _sw_source"
     with _connect(dbapi, src) as conn:
         with conn.cursor() as cur:
-            _execute(cur, f"SELECT * FROM ({inner}) AS _sw_source LIMIT 0", src)
+            # reading never writes: the session refuses any statement that would
+            _execute(cur, "SET SESSION CHARACTERISTICS AS TRANSACTION READ ONLY", src)
+            _execute(cur, f"SELECT * FROM {wrapped} LIMIT 0", src)
             have = {f.name: _pg_type(f) for f in cur.fetch_arrow_table().schema}
             sel = _select_list(src, have, columns)
-            _execute(cur, f"SELECT {', '.join(sel)} FROM ({inner}) AS _sw_source", src)
+            _execute(cur, f"SELECT {', '.join(sel)} FROM {wrapped}", src)
             try:
                 table = cur.fetch_arrow_table()
             except adbc_driver_manager.Error as e:

@@ -71,7 +71,7 @@ def pg(tmp_path_factory):
             "CREATE TABLE panel_text_revenue AS SELECT account, period, market, status, engagement, "
             "revenue::text AS revenue FROM panel",
             "CREATE TABLE panel_no_engagement AS SELECT account, period, market, status, revenue FROM panel",
-            PANEL_DDL.format(name="panel_null"), db=DB)
+            PANEL_DDL.format(name="panel_null"), "CREATE SEQUENCE side_effect", db=DB)
         bad = pd.read_csv(csv, dtype=str)
         bad.loc[6, "status"] = None
         bad.to_csv(d / "null.csv", index=False)
@@ -116,7 +116,7 @@ def test_fit_from_database_equals_parquet(pgpassword, tmp_path, capsys, monkeypa
     # local midnight is the month the session's time zone shows (PGTZ, as psql would show it)
     monkeypatch.setenv("PGTZ", "Europe/Berlin")
     query = ("SELECT customer_id AS account, month_start AS period, region AS market, plan AS status, "
-             "band AS engagement, paid AS revenue FROM crm_months ORDER BY customer_id, month_start;")
+             "band AS engagement, paid AS revenue FROM crm_months ORDER BY customer_id, month_start -- every month")
     rc, from_view = _fit(tmp_path, "view", "--panel", url, "--panel-query", query, "--markets", url,
                          "--markets-query", "SELECT * FROM markets")
     assert rc == 0, capsys.readouterr().err
@@ -167,6 +167,9 @@ def _bad(argv: list[str], tmp_path, capsys) -> str:
      r"the database refused the query: cannot cast type date to integer"),
     (None, "SELECT account, extract(month FROM period) AS period, market, status, engagement FROM panel",
      r"column period: column period is of type numeric; it needs a date, a timestamp or text YYYY-MM"),
+    # the read runs read-only: a query with a side effect is refused by the server (class 25)
+    (None, "SELECT p.*, nextval('side_effect') FROM panel p",
+     r"the database refused the query: cannot execute nextval\(\) in a read-only transaction \(SQLSTATE 25006\)"),
 ])
 def test_bad_panel_in_database(pgpassword, tmp_path, capsys, table, query, expect):
     url = pgpassword.url(DB)
@@ -295,3 +298,17 @@ def test_empty_panel_file_is_a_one_line_error(tmp_path, capsys):
     err = capsys.readouterr().err
     assert rc == 1 and f"error: {tmp_path / 'p.csv'}: the panel has no rows" in err and len(err.splitlines()) == 1
     assert not (tmp_path / "m").exists()
+
+
+def test_labels_name_the_database_without_secrets_or_parameters():
+    from stateworth.estimation.sources import source_of
+
+    src = source_of("postgresql://analyst@db.internal:6432/crm?sslmode=require&passfile=/home/a/.pgpass",
+                    ' analytics."Panel" ', None, option="--panel")
+    assert str(src) == 'postgresql://analyst@db.internal:6432/crm (table analytics."Panel")'
+    assert src.is_database and src.name == str(src)
+    q = source_of("postgres://db.internal/crm", None, "SELECT * FROM v;  ", option="--markets")
+    assert str(q) == "postgres://db.internal/crm (query of --markets-query)" and q.query == "SELECT * FROM v"
+    f = source_of("out/panel.parquet", option="--panel")
+    assert not f.is_database and str(f) == "out/panel.parquet" and f.name == "panel.parquet"
+    assert source_of(None, option="--population") is None
