@@ -38,7 +38,7 @@ from typing import Literal
 import numpy as np
 
 from stateworth.errors import PanelError
-from stateworth.estimation.sources import Column, TableSource, relation
+from stateworth.estimation.sources import Column, TableSource, relation, release
 from stateworth.rules.spec import Spec
 
 GapPolicy = Literal["error", "non_member"]
@@ -391,6 +391,9 @@ def load_panel(spec: Spec, path: str | Path | TableSource, *, gaps: GapPolicy = 
     n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
     if not n:
         raise PanelError("the panel has no rows; give at least one row per account and period", where=path)
+    # every check has passed: only ``coded`` is read from here on
+    con.execute("DROP VIEW raw")
+    release(con, rel)
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
                  p_max=int(pmax), filled=filled, has_revenue=has_rev, cov_levels=cov_levels)
 

@@ -177,6 +177,15 @@ def relation(source: str | Path | TableSource, con, columns: Mapping[str, Column
     return name, "database"
 
 
+def release(con, rel: str) -> None:
+    """Free the rows behind a relation from :func:`relation` once nothing reads them again: a
+    database source's Arrow table, a CSV's temporary table (a Parquet file holds none)."""
+    if rel.startswith("_db_"):
+        con.unregister(rel)
+    elif rel.startswith("_csv_"):
+        con.execute(f"DROP TABLE IF EXISTS {rel}")
+
+
 def file_relation(path: str, con) -> tuple[str, str]:
     """A DuckDB relation text for a CSV/Parquet file, with a 1-based data row number ``_row``.
     Parquet row numbers come from the reader; a CSV is read once into a temporary table with
