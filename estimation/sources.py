@@ -221,7 +221,7 @@ def file_relation(path: str, con) -> tuple[str, str]:
 def read_arrow(source: str | Path | TableSource, columns: Mapping[str, Column] | None = None):
     """The rows of a source as an Arrow table: for a database, the named ``columns`` that it has
     (all when None), typed as in the module docstring; for a file, every column as the file
-    holds it. :class:`SourceError` for a server that cannot be reached or refuses, a missing
+    holds it (a CSV's types as pyarrow infers them). :class:`SourceError` for a server that cannot be reached or refuses, a missing
     table, a failing query, a missing required column, a column of the wrong type, no rows."""
     src = as_source(source)
     if not src.is_database:

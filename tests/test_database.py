@@ -312,3 +312,14 @@ def test_labels_name_the_database_without_secrets_or_parameters():
     f = source_of("out/panel.parquet", option="--panel")
     assert not f.is_database and str(f) == "out/panel.parquet" and f.name == "panel.parquet"
     assert source_of(None, option="--population") is None
+
+
+def test_read_arrow_of_files(tmp_path):
+    from stateworth.estimation.sources import read_arrow
+
+    sim = simulate_panel(load_spec(SPEC), 50, 3, seed=1)
+    p, m = write_simulation(sim, tmp_path / "p.parquet")
+    t = read_arrow(str(p))
+    assert t.num_rows == sim.panel.num_rows and "account" in t.column_names
+    sizes = read_arrow(str(m))
+    assert sizes.column("market").to_pylist() == pd.read_csv(m)["market"].tolist()
