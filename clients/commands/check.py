@@ -17,7 +17,7 @@ tables in a PostgreSQL database (--panel postgresql://USER@HOST:PORT/DB --panel-
 
 example:
   stateworth check examples/fitness.toml
-  stateworth check examples/fitness.toml --panel postgresql://analyst@db.example:5432/crm --panel-table panel \
+  stateworth check examples/fitness.toml --panel postgresql://analyst@db.example:5432/crm --panel-table panel \\
       --markets postgresql://analyst@db.example:5432/crm --markets-table market_sizes
 """
 

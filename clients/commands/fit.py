@@ -19,7 +19,7 @@ The panel and the market sizes may be tables (or views, or queries) in a Postgre
 example:
   stateworth simulate examples/fitness.toml --accounts 20000 -o out/panel.parquet
   stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model
-  PGPASSWORD=... stateworth fit examples/fitness.toml --panel postgresql://analyst@db.example:5432/crm \
+  PGPASSWORD=... stateworth fit examples/fitness.toml --panel postgresql://analyst@db.example:5432/crm \\
       --panel-table panel --markets postgresql://analyst@db.example:5432/crm --markets-table market_sizes -o out/model
 """
 
