@@ -14,7 +14,7 @@ venv: $(STAMP)
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install -q --upgrade pip
-	$(PY) -m pip install -q -e '.[test]'
+	$(PY) -m pip install -q -e '.[test,db]'
 	touch $(STAMP)
 
 demo: $(STAMP)

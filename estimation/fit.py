@@ -17,7 +17,6 @@ Conventions for cells the panel cannot show:
 
 from __future__ import annotations
 
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Literal
@@ -34,6 +33,7 @@ from stateworth.rules.factors import Factor, factors_of, move_mask, plans_withou
 from stateworth.estimation.joins import first_row_table, hazard_summary, join_counts, prospect_rows
 from stateworth.estimation.panel import CODED, Panel, load_markets, load_panel, row_where
 from stateworth.estimation.propensity import SMD_BALANCED, Design, band_cuts, band_of, band_sql, fit_logit, smd_by_band
+from stateworth.estimation.sources import TableSource, as_source
 from stateworth.rules.spec import Spec
 
 #: Rows used for the logistic fit at most (every k-th panel row beyond that).
@@ -74,9 +74,10 @@ def _progress(enabled: bool, total: int):
     return tqdm(total=total, disable=not enabled, unit="step", desc="fit", leave=False)
 
 
-def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, options: FitOptions = FitOptions(),
-              *, source: str = "<spec>", progress: bool = False) -> FitResult:
-    """Fit every factor of ``spec`` from the panel and the market-size table (see module doc)."""
+def fit_panel(spec: Spec, panel_path: str | Path | TableSource, markets_path: str | Path | TableSource,
+              options: FitOptions = FitOptions(), *, source: str = "<spec>", progress: bool = False) -> FitResult:
+    """Fit every factor of ``spec`` from the panel and the market-size table (see module doc);
+    each a file or a database table (:class:`.sources.TableSource`)."""
     _check_options(options)
     from stateworth.estimation.panel import connect
 
@@ -106,7 +107,7 @@ def fit_panel(spec: Spec, panel_path: str | Path, markets_path: str | Path, opti
     bar.set_description("fit: compile")
     tables = {a: ft.table for a, ft in fits.items()}
     draws = {a: ft.draws for a, ft in fits.items() if ft.draws is not None}
-    metadata = {"fitted_from": {"panel": os.path.basename(str(panel_path)), "markets": os.path.basename(str(markets_path)),
+    metadata = {"fitted_from": {"panel": as_source(panel_path).name, "markets": as_source(markets_path, "--markets").name,
                                 "rows": panel.rows, "accounts": panel.accounts,
                                 "periods": [panel.period_label(panel.p_min), panel.period_label(panel.p_max)]},
                 "fit_options": {"strength": options.strength, "forbidden": options.forbidden, "gaps": options.gaps,
@@ -213,14 +214,14 @@ def _inputs(spec: Spec, panel_path, markets_path, options: FitOptions, con, bar,
         attempt(lambda: _raise(PanelError(f"axes.{status}.given must include '{status}' (the current status) to fit "
                                           "from a panel", where="spec")))
     stage("read panel")
-    panel = attempt(lambda: load_panel(spec, str(panel_path), gaps=options.gaps, con=con))
+    panel = attempt(lambda: load_panel(spec, panel_path, gaps=options.gaps, con=con))
     if panel is _FAILED:
         return None
     done()
     stage("market sizes")
     sizes = None
     if markets_path is not None:
-        sizes = attempt(lambda: load_markets(spec, str(markets_path), panel))
+        sizes = attempt(lambda: load_markets(spec, markets_path, panel))
         sizes = None if sizes is _FAILED else sizes
     done()
     lay = panel.layout

@@ -26,8 +26,10 @@ Market-size table columns: ``market`` (levels of the spec's market axis: the fix
 per market and panel period). The market column may also be named after the market axis
 (``country`` for a fixed axis named country).
 
-Errors name the file, the data row (1-based, header not counted; for a CSV also the file line,
-row + 1) and the column.
+Every table comes from a file or a database (:mod:`.sources`: a path, or a PostgreSQL URL with a
+table or query); the validation below reads either through the same DuckDB SQL. Errors name the
+file (or database and table), the data row (1-based, header not counted; for a CSV also the file
+line, row + 1) and the column.
 """
 
 from __future__ import annotations
@@ -41,6 +43,7 @@ import numpy as np
 from stateworth.errors import PanelError
 # parse_period and period_label are imported from here by simulate and fit as well
 from stateworth.estimation.periods import index_sql, parse_period, period_label, period_problem
+from stateworth.estimation.sources import Column, TableSource, relation, release
 from stateworth.rules.spec import Spec
 
 GapPolicy = Literal["error", "non_member"]
@@ -149,32 +152,23 @@ def connect(threads: int | None = None):
     return con
 
 
-def _source(path: str, con) -> tuple[str, str]:
-    """A DuckDB relation text for a CSV/Parquet file, with a 1-based data row number ``_row``.
-    Parquet row numbers come from the reader; a CSV is read once into a temporary table with
-    insertion order preserved for that statement, so its row numbers are the file's."""
-    p = Path(path)
-    if not p.is_file():
-        raise PanelError("no such file; give the path to a CSV or Parquet file", where=str(path))
-    lit = "'" + str(p).replace("'", "''") + "'"
-    suffix = p.suffix.lower()
-    if suffix in (".parquet", ".pq"):
-        return f"(SELECT file_row_number + 1 AS _row, * EXCLUDE (file_row_number) FROM read_parquet({lit}, file_row_number = true))", "parquet"
-    if suffix in CSV_SUFFIXES:
-        import duckdb
+def _source(path: str | Path | TableSource, con, columns: dict[str, Column] | None = None) -> tuple[str, str]:
+    """A DuckDB relation text with a 1-based data row number ``_row`` for a file or a database
+    table (:func:`.sources.relation`); ``columns`` are what a database source reads."""
+    return relation(path, con, columns)
 
-        name = f"_csv_{abs(hash(str(p.resolve()))) % 10 ** 12}"
-        order = con.execute("SELECT current_setting('preserve_insertion_order')").fetchone()[0]
-        con.execute("SET preserve_insertion_order = true")
-        try:
-            con.execute(f"CREATE OR REPLACE TEMP TABLE {name} AS SELECT row_number() OVER () AS _row, * "
-                        f"FROM read_csv({lit}, header = true, all_varchar = true)")
-        except duckdb.Error as e:
-            raise PanelError(f"cannot be read as CSV ({str(e).splitlines()[0]})", where=str(path)) from None
-        finally:
-            con.execute(f"SET preserve_insertion_order = {'true' if order else 'false'}")
-        return name, "csv"
-    raise PanelError(f"unknown file type '{p.suffix}'; use .csv or .parquet", where=str(path))
+
+def panel_columns(lay: Layout) -> dict[str, Column]:
+    """The panel's columns and what each holds (what a database source reads and casts)."""
+    cols = {"account": Column("id"), "period": Column("period")}
+    cols.update({a: Column("level") for a in lay.observed})
+    cols.update({c: Column("level" if c in lay.categorical else "number") for c in lay.covariates})
+    cols["revenue"] = Column("number", required=False)
+    return cols
+
+
+MARKET_COLUMNS = {"market": Column("level"), "size": Column("number"), "low": Column("number"),
+                  "high": Column("number"), "period": Column("period", required=False)}
 
 
 def _columns(con, rel: str, path: str) -> dict[str, str]:
@@ -204,12 +198,13 @@ def _case_codes(col: str, levels: list[str]) -> str:
     return f"CASE CAST({col} AS VARCHAR) {whens} END"
 
 
-def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str]], object]:
+def panel_problems(spec: Spec, path: str | TableSource, con=None) -> tuple[list[tuple[str, str]], object]:
     """Validate a panel file against a spec. Returns ``([(where, message)], connection)``; the
     connection holds view ``raw`` (the file with ``_row``) when the columns were found."""
     con = con or connect()
     lay = Layout.of(spec)
-    rel, kind = _source(path, con)
+    rel, kind = _source(path, con, panel_columns(lay))
+    path = str(path)
     cols = _columns(con, rel, path)
     need = ["account", "period"] + list(lay.observed) + list(lay.covariates)
     missing = [c for c in need if c not in cols]
@@ -335,18 +330,18 @@ def gap_example(con) -> tuple[int, int, int] | None:
     return _first(con, f"SELECT _row, _pp, p FROM {CODED} WHERE p - _pp > 1 ORDER BY _row LIMIT 1")
 
 
-def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) -> Panel:
+def load_panel(spec: Spec, path: str | Path | TableSource, *, gaps: GapPolicy = "error", con=None) -> Panel:
     """Validate and code a panel (see the module docstring). Raises :class:`PanelError` naming
     the file, row and column of the first problem (``problems`` lists all found)."""
     if gaps not in GAP_POLICIES:
         raise PanelError(f"unknown gap policy '{gaps}'; use one of {', '.join(GAP_POLICIES)}", where="gaps")
-    path = str(path)
+    src, path = path, str(path)
     con = con or connect()
     lay = Layout.of(spec)
-    rel, _ = _source(path, con)
+    rel, _ = _source(src, con, panel_columns(lay))
     cols = _columns(con, rel, path)
     if any(c not in cols for c in ["account", "period"] + list(lay.observed) + list(lay.covariates)):
-        raise _panel_error(panel_problems(spec, path, con)[0])
+        raise _panel_error(panel_problems(spec, src, con)[0])
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     # code first, validate on the codes: a clean file is read once, a bad one twice
     sel = ["_row", "account", f"{index_sql(_q('period'), cols['period'], spec.model.period)} AS p"]
@@ -364,7 +359,7 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
     con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS "
                 + sequence_sql(lay, f"(SELECT {', '.join(sel)} FROM raw) c", base))
     if _coded_flags(con, lay, cols):
-        probs, _ = panel_problems(spec, path, con)
+        probs, _ = panel_problems(spec, src, con)
         if not probs:  # pragma: no cover - the two checks disagree: a bug, not bad input
             raise RuntimeError("panel flagged by the coded scan but no detailed problem found")
         raise _panel_error(probs)
@@ -385,6 +380,11 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
                              "level", where=f"{row_where(path, gap[0])}, column period")
         filled = fill_gaps(con, lay, base)
     n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
+    if not n:
+        raise PanelError("the panel has no rows; give at least one row per account and period", where=path)
+    # every check has passed: only ``coded`` is read from here on
+    con.execute("DROP VIEW raw")
+    release(con, rel)
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
                  p_max=int(pmax), filled=filled, has_revenue=has_rev, cov_levels=cov_levels)
 
@@ -452,20 +452,21 @@ class MarketSizes:
     by_period: bool
 
 
-def load_markets(spec: Spec, path: str, panel: Panel) -> MarketSizes:
+def load_markets(spec: Spec, path: str | Path | TableSource, panel: Panel) -> MarketSizes:
     """Read and validate the market-size table against the spec and the coded panel."""
-    probs = market_problems(spec, str(path), panel)
+    probs = market_problems(spec, path, panel)
     if isinstance(probs, MarketSizes):
         return probs
     raise _panel_error(probs)
 
 
-def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]] | MarketSizes:
+def market_problems(spec: Spec, path: str | TableSource, panel: Panel) -> list[tuple[str, str]] | MarketSizes:
     con, lay = panel.con, panel.layout
+    src, path = path, str(path)
     if lay.market is None:
         return [(path, "the spec declares no fixed axis; a market-size table needs a market axis "
                        "(kind = \"fixed\", named market)")]
-    rel, _ = _source(path, con)
+    rel, _ = _source(src, con, MARKET_COLUMNS)
     cols = _columns(con, rel, path)
     # the market column is named `market`, or after the market axis itself (`country`)
     mcol = lay.market if lay.market in cols else "market"
@@ -557,20 +558,21 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     return MarketSizes(lay.market, fill(size), fill(low), fill(high), by_period)
 
 
-def check_panel(spec: Spec, panel_path: str, markets_path: str | None, *, gaps: GapPolicy = "error") -> list[str]:
+def check_panel(spec: Spec, panel_path: str | TableSource, markets_path: str | TableSource | None, *,
+                gaps: GapPolicy = "error") -> list[str]:
     """The problems found reading a panel (and its market-size table) against a spec, as
     ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine).
     The checks a fit adds on top (forbidden moves and joins, the propensity score, the join
     hazard's at-risk counts) are in :func:`stateworth.estimation.fit.check_fit_inputs`, which
     ``stateworth check --panel`` runs."""
     try:
-        panel = load_panel(spec, str(panel_path), gaps=gaps)
+        panel = load_panel(spec, panel_path, gaps=gaps)
     except PanelError as e:
         return list(getattr(e, "problems", [str(e)]))
     if markets_path is None:
         return []
     try:
-        res = market_problems(spec, str(markets_path), panel)
+        res = market_problems(spec, markets_path, panel)
     except PanelError as e:
         return [str(e)]
     return [] if isinstance(res, MarketSizes) else [f"{w}: {m}" for w, m in res]

@@ -52,7 +52,8 @@ def example_lines(description: str) -> list[str]:
 
 
 def _looks_like_path(value: str) -> bool:
-    return "=" not in value and ("/" in value or value.endswith(PATH_SUFFIXES))
+    # a database URL (postgresql://...) names a server, not a file of the repository
+    return "=" not in value and "://" not in value and ("/" in value or value.endswith(PATH_SUFFIXES))
 
 
 def _strings(value) -> list[str]:

@@ -1,8 +1,10 @@
-"""``stateworth fit SPEC --panel FILE --markets FILE -o MODEL_DIR``: estimate and compile a model."""
+"""``stateworth fit SPEC --panel FILE|URL --markets FILE|URL -o MODEL_DIR``: estimate and compile a model."""
 
 from __future__ import annotations
 
 import argparse
+
+from stateworth.clients.commands._sources import add_table_arguments
 
 NAME = "fit"
 HELP = "estimate the factor tables from an account panel and write the compiled model"
@@ -11,19 +13,24 @@ market-size table, and write the compiled model artifact to MODEL_DIR with diagn
 readable diagnostics.txt) inside. Probabilities are Dirichlet posterior means shrunk towards the
 parent cell; never-member join rates come from first joins and the market sizes; a propensity
 band axis is fitted from its covariates. Nothing is written when fitting fails.
+The panel and the market sizes may be tables (or views, or queries) in a PostgreSQL database:
+--panel postgresql://USER@HOST:PORT/DB --panel-table TABLE (password from PGPASSWORD or ~/.pgpass).
 
 example:
   stateworth fit examples/fitness.toml --panel demo-out/panel/fitted.parquet \\
       --markets demo-out/panel/fitted.markets.csv -o out/model
   stateworth simulate examples/fitness.toml --accounts 20000 -o out/panel.parquet
   stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model2
+  stateworth fit examples/fitness.toml --panel postgresql://analyst@db.example:5432/crm \\
+      --panel-table panel --markets postgresql://analyst@db.example:5432/crm --markets-table market_sizes -o out/model
 """
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("spec", help="the model spec (TOML)")
-    p.add_argument("--panel", required=True, help="account panel (.csv or .parquet; see README 'Fitting from an account panel')")
-    p.add_argument("--markets", required=True, help="market-size table (market, size, low, high[, period])")
+    add_table_arguments(p, "panel", "account panel (.csv or .parquet; see README 'Fitting from an account panel')",
+                        required=True)
+    add_table_arguments(p, "markets", "market-size table (market, size, low, high[, period])", required=True)
     p.add_argument("-o", "--output", required=True, help="model directory to write")
     p.add_argument("--strength", default="auto",
                    help="prior strength in pseudo-moves per cell, or auto (empirical Bayes; default)")
@@ -45,6 +52,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     import sys
 
+    from stateworth.clients.commands._sources import table_source
     from stateworth.errors import PanelError
     from stateworth.rules import load_spec
     from stateworth.estimation.diagnostics import summary_text
@@ -60,6 +68,7 @@ def run(args: argparse.Namespace) -> int:
                              where="--strength") from None
     if args.draws < 0:
         raise PanelError("give 0 or more draws", where="--draws")
+    panel, markets = table_source(args, "panel"), table_source(args, "markets")
     spec = load_spec(args.spec)
     opts = FitOptions(strength=strength, forbidden="drop" if args.drop_forbidden else "error", gaps=args.gaps,
                       draws=args.draws, seed=args.seed, engine=args.engine)
@@ -73,7 +82,7 @@ def run(args: argparse.Namespace) -> int:
         solved_box.append(solve_model(res.model))
         stored.save(tmp, solved_box[0])
 
-    res = fit_to_dir(spec, args.panel, args.markets, args.output, opts, source=args.spec,
+    res = fit_to_dir(spec, panel, markets, args.output, opts, source=args.spec,
                      progress=not args.quiet and sys.stderr.isatty(),
                      before_publish=None if args.no_solve else store_values)
     if not args.quiet:
