@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import string
 from dataclasses import dataclass
+from functools import partial
 from typing import Mapping
 
 import jax
@@ -183,20 +184,13 @@ def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.
 _frozen_matrix_jit = jax.jit(frozen_matrix, static_argnums=0)
 
 
-@jax.tree_util.register_pytree_node_class
+@partial(jax.tree_util.register_dataclass, data_fields=["inv"], meta_fields=["layout"])
+@dataclass(frozen=True, eq=False)
 class FrozenCoarse:
     """The frozen-cluster correction as a pytree: ``inv`` ``(blocks, K2, K2)`` is its leaf."""
 
-    def __init__(self, layout: FrozenLayout, inv: jax.Array) -> None:
-        self.layout = layout
-        self.inv = inv
-
-    def tree_flatten(self):
-        return (self.inv,), self.layout
-
-    @classmethod
-    def tree_unflatten(cls, layout, children):
-        return cls(layout, children[0])
+    layout: FrozenLayout
+    inv: jax.Array
 
     def astype(self, dtype) -> "FrozenCoarse":
         return FrozenCoarse(self.layout, self.inv.astype(dtype))
