@@ -23,7 +23,7 @@ from stateworth.rules.rewards import reward_vector
 from stateworth.rules.spec import Spec
 
 if TYPE_CHECKING:
-    from stateworth.rules.operator import GridOperator
+    from stateworth.rules.grid_operator import GridOperator
 
 FORMAT = "stateworth.compiled/1"
 
@@ -93,7 +93,7 @@ class CompiledModel:
         if self._operator is None:
             with self._lock:
                 if self._operator is None:
-                    from stateworth.rules.operator import make_operator
+                    from stateworth.rules.grid_operator import make_operator
                     self._operator = make_operator(self.spec, self.grid, self.factors, self.tables,
                                                    reuse_plan=self.reuse_plan)
         return self._operator
