@@ -33,8 +33,11 @@ import numpy as np
 
 from stateworth.rules.counters import counter_index
 
-#: grids up to this many states use the explicit CSR matrix for expected flows
-CSR_MAX_STATES = 1_000_000
+#: grids up to this many states use the explicit CSR matrix for expected flows (its entries grow
+#: with states x next-level combinations); larger ones the structured operator
+CSR_MAX_STATES = 200_000
+#: group rows a simulation holds at once, about: replicates are simulated in chunks below it
+CHUNK_ROWS = 1_000_000
 #: below this many (replicate, tag, state) keys groups are merged by a dense bincount, above by
 #: a sort
 DENSE_KEYS = 20_000_000
@@ -80,7 +83,7 @@ class FlowChain:
 
     @property
     def n_tables(self) -> int:
-        return int(self.tables[0].shape[0])
+        return max(int(t.shape[0]) for t in self.tables)
 
 
 def flow_chain(model, draws: bool = True) -> FlowChain:
@@ -100,16 +103,17 @@ def flow_chain(model, draws: bool = True) -> FlowChain:
     for f in model.factors:
         L = f.shape[-1]
         cells = int(np.prod(f.shape[:-1], dtype=np.int64))
-        if D:
-            t = model.draws.get(f.axis)
-            t = np.broadcast_to(model.tables[f.axis], (D,) + f.shape) if t is None else t
-        else:
-            t = model.tables[f.axis][None]
-        t = np.asarray(t, dtype=np.float64).reshape(-1, cells, L)
-        # rows carry sums of 1 to rounding; the multinomial draw wants them at most 1
-        t = np.clip(t, 0.0, None)
+        # a factor without draws keeps its point table (one set; the step reads set 0 for it)
+        t = model.draws.get(f.axis) if D else None
+        t = np.asarray(model.tables[f.axis] if t is None else t, dtype=np.float64).reshape(-1, cells, L)
+        # the multinomial draw wants rows summing to at most 1 + 1e-12; written tables may be
+        # off by up to 1e-9 (the spec's tolerance), so only those are rescaled (draws can be large)
         total = t.sum(axis=-1, keepdims=True)
-        tables.append(t / np.where(total > 0, total, 1.0))
+        if np.abs(total - 1.0).max(initial=0.0) > 1e-13 or (t < 0).any():
+            t = np.clip(t, 0.0, None)
+            total = t.sum(axis=-1, keepdims=True)
+            t = t / np.where(total > 0, total, 1.0)
+        tables.append(t)
         gstride = np.cumprod((1,) + f.shape[:-1][::-1])[::-1][1:]
         b = np.zeros(grid.size, dtype=np.int64)
         pairs = []
