@@ -49,7 +49,7 @@ def load_result(path: str | Path) -> dict:
 def chart_counts(res: Mapping[str, Any]) -> bytes | None:
     """Accounts by status level and market: the calibration months observed, the holdout
     observed against the prediction and its band, one small panel per figure."""
-    from stateworth.clients.report import _plt, _png, _thousands
+    from stateworth.clients.report import _plt, _thousands
 
     series = [s for s in res["figures"] if s["figure"] == "accounts"]
     if not series:
@@ -57,7 +57,8 @@ def chart_counts(res: Mapping[str, Any]) -> bytes | None:
     plt = _plt()
     ncol = min(4, len(series))
     nrow = math.ceil(len(series) / ncol)
-    fig, axes = plt.subplots(nrow, ncol, figsize=(3.6 * ncol + 0.6, 2.7 * nrow + 0.9), squeeze=False)
+    height = 2.7 * nrow + 1.2
+    fig, axes = plt.subplots(nrow, ncol, figsize=(3.6 * ncol + 0.6, height), squeeze=False)
     for k, s in enumerate(series):
         ax = axes[k // ncol][k % ncol]
         hist = s.get("history") or {"periods": [], "observed": []}
@@ -87,11 +88,23 @@ def chart_counts(res: Mapping[str, Any]) -> bytes | None:
             if lab not in labels:
                 handles.append(h)
                 labels.append(lab)
-    fig.legend(handles, labels, loc="lower center", ncol=len(labels), frameon=False, bbox_to_anchor=(0.5, -0.02))
+    fig.legend(handles, labels, loc="lower center", ncol=len(labels), frameon=False, bbox_to_anchor=(0.5, 0.0))
     fig.suptitle(f"Accounts by status and market: holdout {res['holdout_periods'][0]}..{res['holdout_periods'][-1]} "
                  "predicted from the calibration fit (dotted line: the cut-off)", fontsize=13)
-    fig.tight_layout(rect=(0, 0.05, 1, 1))
-    return _png(fig)
+    # fixed margins: tight layouts measure every tick label twice and took ~4x as long at 15 panels
+    fig.subplots_adjust(left=0.06, right=0.99, top=1 - 0.95 / height, bottom=0.75 / height, wspace=0.28, hspace=0.5)
+    return _save(fig)
+
+
+def _save(fig) -> bytes:
+    import io
+
+    import matplotlib.pyplot as plt
+
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=100)
+    plt.close(fig)
+    return buf.getvalue()
 
 
 def chart_retention(res: Mapping[str, Any]) -> bytes | None:

@@ -8,6 +8,7 @@ spec's axes is right)."""
 from __future__ import annotations
 
 import json
+import tomllib
 from pathlib import Path
 
 import numpy as np
@@ -17,12 +18,13 @@ import pyarrow.compute as pc
 import pytest
 
 from stateworth.clients.cli import main
+from stateworth.errors import PanelError
 from stateworth.estimation.backtest import BacktestOptions, backtest
 from stateworth.estimation.fit import FitOptions, fit_panel
 from stateworth.estimation.flows import Groups, chain_maps, flow_chain, merge, replicate, step
 from stateworth.estimation.simulate import simulate_panel, write_simulation, write_table
 from stateworth.estimation.survival import expected_curve, kaplan_meier, member_survival
-from stateworth.rules import compile_model, load_spec
+from stateworth.rules import compile_model, load_spec, parse_spec
 from stateworth.rules.factors import factors_of, table_from_rows
 
 SPEC_PATH = str(Path(__file__).parent / "data" / "mini_fitness.toml")
@@ -339,3 +341,15 @@ def test_operator_path_and_replicate_chunks_give_the_same_expected_figures(spec,
     for fa, fb in zip(a["figures"], b["figures"]):
         assert np.allclose(fa["predicted"], fb["predicted"], rtol=1e-10) and fa["observed"] == fb["observed"]
     assert np.allclose(a["retention"]["predicted"], b["retention"]["predicted"], rtol=1e-10)
+
+
+def test_a_given_model_predicts_instead_of_a_fit(spec, small_panel):
+    panel, markets = small_panel
+    truth = compile_model(spec)  # the tables the panel was drawn from, no posterior draws
+    res = backtest(spec, panel, markets, BacktestOptions(holdout=3, replicates=40), model=truth)
+    assert res["model"]["version"] == truth.version and res["model"]["draws"] == 0
+    assert any("no posterior draws" in n for n in res["notes"])
+    doc = tomllib.loads(Path(SPEC_PATH).read_text())
+    other = parse_spec({**doc, "model": {**doc["model"], "name": "other"}}, source="other")
+    with pytest.raises(PanelError, match="another spec"):
+        backtest(other, panel, markets, BacktestOptions(holdout=3, replicates=40), model=truth)

@@ -31,8 +31,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--holdout", required=True, type=int, metavar="K",
                    help="periods held out at the panel's end (at least 1, fewer than the panel's periods minus 2)")
     p.add_argument("--level", type=float, default=0.9, help="band level, strictly between 0 and 1 (default 0.9)")
-    p.add_argument("--replicates", type=int, default=200,
-                   help="simulated holdouts behind the bands (default 200; the cohorts get half as many)")
+    p.add_argument("--replicates", type=int, default=100,
+                   help="simulated holdouts (and retention cohorts) behind the bands (default 100, at least 20)")
     p.add_argument("-o", "--output", default=None,
                    help="directory for backtest.json and backtest.html (replaced if it holds an earlier backtest)")
     p.add_argument("--json", action="store_true", help="print the result as JSON (for scripts)")
