@@ -192,8 +192,11 @@ def test_consistent_on_panels_from_the_spec(spec, tmp_path):
             ref = [sf.surv_prob[sf.surv_times <= k][-1] for k in r["durations"]]
             assert np.allclose(r["observed"], ref, atol=1e-12)
             assert len(res["figures"]) == 5 + 3  # 2 markets x (lapsed, basic) + plus in north; joins, lapses, revenue
-    # the chain is right: consistent, and the coverage of the 90 % bands near 90 % (each
-    # panel's coverage varies a lot since a holdout's figures move together)
+    # calibration / holdout validation (Schmittlein, Morrison & Colombo 1987; Fader, Hardie &
+    # Lee 2005; docs/references.md; the method recalled from memory): the chain is right, so the
+    # verdict is consistent and the holdout figures fall inside their 90 % bands about 90 % of
+    # the time (coverage checked by simulation, as for Efron & Tibshirani's percentile intervals;
+    # each panel's coverage varies a lot since a holdout's figures move together)
     assert verdicts.count("consistent") >= 5, (verdicts, covs)
     assert abs(np.mean(covs) - 0.9) < 0.07, covs
 
