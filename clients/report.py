@@ -696,6 +696,7 @@ as balanced) and where the prior dominated sparse cells.</p>
 <h2>The model</h2>
 {_table(['axis', 'kind', 'levels', 'level names'], axes_rows, [False, False, True, False])}
 
+{_backtest_html(data, charts)}
 <h2>Assumptions and cautions</h2>
 <ul>{''.join(f'<li>{e(a)}</li>' for a in data['assumptions'])}</ul>
 <ul>{''.join(f'<li>{e(c)}</li>' for c in data['cautions'])}</ul>
@@ -705,10 +706,21 @@ as balanced) and where the prior dominated sparse cells.</p>
             f"<body>{body}</body></html>\n")
 
 
+def _backtest_html(data: Mapping[str, Any], charts: Mapping[str, bytes | None]) -> str:
+    """The backtest section when the report was given a backtest result (``--backtest``)."""
+    if not data.get("backtest"):
+        return ""
+    from stateworth.clients.backtest_page import section_html
+
+    return section_html(data["backtest"], charts)
+
+
 def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | None = None,
-                 valuer=None, top: int = 12, progress: bool = False) -> Path:
+                 valuer=None, top: int = 12, progress: bool = False, backtest: str | Path | None = None) -> Path:
     """Solve (unless ``valuer`` is given), collect, draw and write ``out_dir`` atomically:
     ``report.html`` (self-contained), ``charts/*.png``, ``report.json``. Returns the page's path.
+    ``backtest``: a ``backtest.json`` from ``stateworth backtest -o DIR``, shown as a section
+    of its own (observed against predicted with bands, retention by join cohort).
 
     ``out_dir`` may be missing, empty, or an earlier report (replaced); anything else is refused
     with an ArtifactError so that no unrelated folder is overwritten."""
@@ -720,6 +732,10 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
         if entries and "report.html" not in entries:
             raise ArtifactError("exists, is not empty and holds no earlier report; pick a new directory",
                                 where=str(out_dir))
+    backtest_result = None
+    if backtest is not None:
+        from stateworth.clients.backtest_page import load_result
+        backtest_result = load_result(backtest)  # read before the solve: a wrong file fails fast
     if valuer is None:
         from stateworth.clients.commands._common import load_valuer
         valuer = load_valuer(str(model_dir))
@@ -733,6 +749,10 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
                                 where=str(model_dir)) from None
     data = collect(valuer, stream=stream, diagnostics=diagnostics, top=top, progress=progress)
     charts = {name: fn(data) for name, fn in CHARTS.items()}
+    if backtest_result is not None:
+        from stateworth.clients.backtest_page import charts as backtest_charts
+        data["backtest"] = backtest_result
+        charts.update(backtest_charts(backtest_result))
     page = render_html(data, charts)
 
     with atomic_dir(out_dir) as tmp:

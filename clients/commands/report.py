@@ -13,6 +13,9 @@ marginal transition values, the fit diagnostics (from the model's diagnostics.js
 fitted from a panel), the solve statistics, and the model's assumptions and cautions. The
 charts are also written to OUT_DIR/charts/, the figures to OUT_DIR/report.json.
 
+With --backtest FILE (a backtest.json from `stateworth backtest -o DIR`) the page also shows the
+backtest: observed against predicted holdout figures with their bands, retention by join cohort.
+
 example:
   stateworth report demo-out/models/fitted -o out/report
   stateworth report demo-out/models/fitted -o out/report-margin --stream margin
@@ -25,6 +28,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                                                          "holds an earlier report)")
     p.add_argument("--stream", default=None, help="reward stream (default: the spec's first stream)")
     p.add_argument("--top", type=int, default=12, help="marginal transition values to list (default 12)")
+    p.add_argument("--backtest", default=None, metavar="FILE",
+                   help="add a backtest's section: the backtest.json written by `stateworth backtest -o DIR`")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -35,6 +40,7 @@ def run(args: argparse.Namespace) -> int:
 
     if args.top < 1:
         raise QueryError(f"--top must be at least 1 (got {args.top})", field="top")
-    page = build_report(args.model, args.output, stream=args.stream, top=args.top, progress=sys.stderr.isatty())
+    page = build_report(args.model, args.output, stream=args.stream, top=args.top, progress=sys.stderr.isatty(),
+                        backtest=args.backtest)
     print(f"wrote {page} (charts in {page.parent / 'charts'}, figures in {page.parent / 'report.json'})")
     return 0
