@@ -48,7 +48,7 @@ from stateworth.errors import PanelError
 from stateworth.estimation.counts import counter_start, transitions_sql
 from stateworth.estimation.fit import FitOptions, fit_panel
 from stateworth.estimation.flows import CHUNK_ROWS, Groups, chain_maps, flow_chain, merge, replicate, step
-from stateworth.estimation.panel import CODED, Panel, connect, load_markets, load_panel, period_label
+from stateworth.estimation.panel import CODED, Panel, connect, load_markets, load_panel
 from stateworth.estimation.survival import expected_curve, kaplan_meier, member_survival, product_limit
 from stateworth.rules.spec import Spec
 
@@ -462,14 +462,14 @@ def _read(spec: Spec, panel_path, markets_path, options: BacktestOptions) -> tup
     panel = load_panel(spec, panel_path, gaps=options.fit.gaps, con=connect(options.fit.threads))
     T = panel.p_max - panel.p_min + 1
     if K > T - 3:
-        raise PanelError(f"--holdout {K}: the panel has {T} periods ({period_label(panel.p_min)}.."
-                         f"{period_label(panel.p_max)}); hold out fewer than the periods minus 2 (at most "
+        raise PanelError(f"--holdout {K}: the panel has {T} periods ({panel.period_label(panel.p_min)}.."
+                         f"{panel.period_label(panel.p_max)}); hold out fewer than the periods minus 2 (at most "
                          f"{max(T - 3, 0)}), so that the calibration months show at least two moves", where="--holdout")
     cut = panel.p_max - K
     rows_by_p = dict(panel.con.execute(f"SELECT p, count(*) FROM {CODED} GROUP BY p").fetchall())
     empty = [p for p in range(cut + 1, panel.p_max + 1) if not rows_by_p.get(p)]
     if empty:
-        raise PanelError(f"the holdout period {period_label(empty[0])} has no accounts in the panel; every holdout "
+        raise PanelError(f"the holdout period {panel.period_label(empty[0])} has no accounts in the panel; every holdout "
                          "period needs rows to compare with (hold out fewer periods, or fill the missing months)",
                          where=f"{panel_path}: column period")
     if not any(rows_by_p.get(p) for p in range(panel.p_min, cut + 1)):
@@ -533,8 +533,8 @@ def backtest(spec: Spec, panel_path: "str | Path | TableSource", markets_path: "
     sim_counts = sim_counts.reshape(R, K, S, M)
     phase("simulated_holdouts")
 
-    periods = [period_label(p) for p in range(cut + 1, panel.p_max + 1)]
-    before = [period_label(p) for p in range(panel.p_min + 1, cut + 1)]
+    periods = [panel.period_label(p) for p in range(cut + 1, panel.p_max + 1)]
+    before = [panel.period_label(p) for p in range(panel.p_min + 1, cut + 1)]
     common = {"K": K, "level": L, "periods": periods, "before": before}
     series: list[dict] = []
     for si, lv in enumerate(st_levels):
@@ -581,15 +581,15 @@ def backtest(spec: Spec, panel_path: "str | Path | TableSource", markets_path: "
         "model": {"name": model.name, "version": model.version, "states": int(model.n_states),
                   "currency": spec.model.currency, "draws": int(D if model.draws else 0), "source": source},
         "panel": {"file": as_source(panel_path).name, "markets": as_source(markets_path, "--markets").name,
-                  "periods": [period_label(panel.p_min), period_label(panel.p_max)], "rows": panel.rows,
+                  "periods": [panel.period_label(panel.p_min), panel.period_label(panel.p_max)], "rows": panel.rows,
                   "accounts": panel.accounts},
         "holdout": K, "level": L, "replicates": R, "seed": options.seed,
-        "calibration": [period_label(panel.p_min), period_label(cut)],
+        "calibration": [panel.period_label(panel.p_min), panel.period_label(cut)],
         "holdout_periods": periods,
         "method": ("expected figures: the start pushed forward with the calibration fit's posterior-mean chain; "
                    f"bands: {R} simulated holdouts, multinomial flows of the same finite population, each under one "
                    f"of {D} table sets (posterior draws), quantiles at {(1 - L) / 2:.3g} and {(1 + L) / 2:.3g}"),
-        "start": {"period": period_label(cut), "tracked": start.tracked, "never_members": int(start.never.sum()),
+        "start": {"period": panel.period_label(cut), "tracked": start.tracked, "never_members": int(start.never.sum()),
                   "imputed": start.imputed,
                   "never_members_by_market": {mk: int(v) for mk, v in zip(m_levels, start.never)}},
         "figures": series,
@@ -649,7 +649,7 @@ def _retention(model, chain, pull, joiners: dict, panel: Panel, level: float, R:
     worst = int(np.argmax(np.abs(z_obs)))
     p_value = float(np.mean(z_sim >= abs(z_obs[worst]) - 1e-12))
     return {
-        "cohorts": [period_label(int(jp.min())), period_label(int(jp.max()))], "joiners": int(cnt.sum()),
+        "cohorts": [panel.period_label(int(jp.min())), panel.period_label(int(jp.max()))], "joiners": int(cnt.sum()),
         "durations": list(range(1, H + 1)), "at_risk": [float(v) for v in km.at_risk],
         "events": [float(v) for v in km.events], "observed": [float(v) for v in km.survival],
         "predicted": [float(v) for v in pred.survival], "band": [[float(a), float(b)] for a, b in zip(lo, hi)],
@@ -659,7 +659,7 @@ def _retention(model, chain, pull, joiners: dict, panel: Panel, level: float, R:
                         "band": [float(lo[worst]), float(hi[worst])], "z": float(z_obs[worst])},
         "p_value": p_value,
         "note": (f"Kaplan-Meier share still a member k periods after first joining, accounts that joined in "
-                 f"{period_label(int(jp.min()))}..{period_label(int(jp.max()))}, followed to the panel's end "
+                 f"{panel.period_label(int(jp.min()))}..{panel.period_label(int(jp.max()))}, followed to the panel's end "
                  f"(durations with at least {MIN_AT_RISK} joiners at risk); predicted: the calibration chain's "
                  "product-limit curve for the same join states and follow-up; band: simulated cohorts"),
     }
