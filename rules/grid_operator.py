@@ -68,6 +68,8 @@ class Plan:
         perm = dict(self.layouts).get(key)
         if perm is None or perm == tuple(range(len(perm))):
             return table
+        if isinstance(table, np.ndarray):  # known now: numpy, no compile of a transpose kernel
+            return np.ascontiguousarray(np.transpose(table, perm))
         return jnp.transpose(table, perm)
 
     def stored_dims(self, key: str, dims: tuple) -> tuple:
@@ -239,10 +241,15 @@ def _columns(f, x: jax.Array) -> jax.Array:
     return jax.lax.map(f, x.T).T
 
 
+# jitted on their own (the plan static): a solver program applies P in several places (the
+# Krylov step, the residual, the smoother, the frozen-cluster correction) and in two precisions;
+# as nested jits each apply is traced once per precision and lowered as one shared function
+@partial(jax.jit, static_argnums=0)
 def _apply(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
     return _columns(partial(_apply_single, plan, arrays), x)
 
 
+@partial(jax.jit, static_argnums=0)
 def _apply_transpose(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
     return _columns(partial(_apply_transpose_single, plan, arrays), y)
 
@@ -283,7 +290,7 @@ class GridOperator:
         """The same structure with other factor tables (a changed or drawn model)."""
         arrays = dict(self.arrays)
         for k, v in tables.items():
-            arrays[f"table.{k}"] = self.plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64))
+            arrays[f"table.{k}"] = self.plan.stored(f"table.{k}", config.device(v, jnp.float64))
         return replace(self, arrays=arrays)
 
 
@@ -303,7 +310,7 @@ def _plan_for(spec, grid: Grid, factors: list[Factor]) -> tuple[Plan, dict]:
             _PLANS.move_to_end(key)
             return hit[1], hit[2]
     plan = build_plan(spec, grid, factors)
-    index = {f"index.{a.name}": jnp.asarray(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
+    index = {f"index.{a.name}": config.device(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
     with _PLANS_LOCK:
         _PLANS[key] = (spec, plan, index)
         while len(_PLANS) > _PLANS_MAX:
@@ -320,7 +327,8 @@ def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.
         plan, index = _plan_for(spec, grid, factors)
     else:
         plan = build_plan(spec, grid, factors)
-        index = {f"index.{a.name}": jnp.asarray(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
-    arrays = {f"table.{k}": plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64)) for k, v in tables.items()}
+        index = {f"index.{a.name}": config.device(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
+    arrays = {f"table.{k}": config.device(plan.stored(f"table.{k}", np.asarray(v, dtype=np.float64)))
+              for k, v in tables.items()}
     arrays.update(index)
     return GridOperator(plan, arrays)

@@ -173,7 +173,7 @@ def _onehot(layout: FrozenLayout, dtype) -> jax.Array:
     S = layout.grid_shape[layout.status_pos]
     h = np.zeros((S, len(layout.frozen)))
     h[list(layout.frozen), np.arange(len(layout.frozen))] = 1.0
-    return jnp.asarray(h, dtype=dtype)
+    return h.astype(np.dtype(dtype))  # a constant: numpy inside a trace, no conversion kernel
 
 
 def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.Array:
@@ -188,6 +188,19 @@ def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.
     ops += [h, h]
     ops += [jnp.ones(n) for _, n in layout.ones]
     c = jnp.einsum(layout.expr, *ops, optimize="auto") / layout.denom
+    return c.reshape(layout.blocks, layout.block, layout.block)
+
+
+def frozen_matrix_np(layout: FrozenLayout, tables: Mapping[str, np.ndarray]) -> np.ndarray:
+    """:func:`frozen_matrix` in numpy, for tables known now (no compile)."""
+    ops = [np.asarray(tables[a], dtype=np.float64) for a in layout.factor_axes]
+    S = layout.grid_shape[layout.status_pos]
+    ops += [np.array(m, dtype=np.float64).reshape(len(m), S, S) for _, m in layout.masks]
+    ops += [np.roll(np.eye(n), 1, axis=1) for _, n in layout.shifts]
+    h = np.asarray(_onehot(layout, jnp.float64))
+    ops += [h, h]
+    ops += [np.ones(n) for _, n in layout.ones]
+    c = np.einsum(layout.expr, *ops, optimize="greedy") / layout.denom
     return c.reshape(layout.blocks, layout.block, layout.block)
 
 
@@ -251,8 +264,20 @@ def frozen_coarse(layout: FrozenLayout, tables: Mapping[str, jax.Array], beta, *
                   dtype=jnp.float64) -> FrozenCoarse:
     """The correction for ``I - beta P`` (or its transpose) with P's factor ``tables``."""
     config.use_jax()
-    from stateworth.solver.preconditioner import _coarse_inverse
+    from stateworth.solver.preconditioner import _coarse_inverse, coarse_inverse_np
 
+    if not any(isinstance(t, jax.core.Tracer) for t in tables.values()) and \
+            not isinstance(beta, jax.core.Tracer):
+        # built eagerly (a point solve): numpy, no compile
+        C = frozen_matrix_np(layout, tables)
+        if layout.split > 1:
+            S, k = layout.split, layout.block // layout.split
+            C = C.reshape(layout.blocks, S, k, S, k)
+            C = np.stack([C[:, s, :, s, :] for s in range(S)], axis=1).reshape(layout.blocks * S, k, k)
+            inv = coarse_inverse_np(C, beta, transpose).reshape(layout.blocks, S, k, k)
+        else:
+            inv = coarse_inverse_np(C, beta, transpose)
+        return FrozenCoarse(layout, config.device(inv, dtype))
     C = _frozen_matrix_jit(layout, dict(tables))
     b = jnp.asarray(beta, dtype=jnp.float64)
     if layout.split > 1:

@@ -211,7 +211,7 @@ def _solve_jax(model, compiled, op, r, beta, names, chosen, *, tol, x0, transpos
     A = op.transpose() if transpose else op
 
     def place(a):
-        a = jnp.asarray(a)
+        a = config.device(a)
         return a if shard is None else sharding.put_sharded(shard, a)
 
     if horizon is not None:

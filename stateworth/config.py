@@ -82,6 +82,19 @@ def use_jax() -> None:
             jax.config.update("jax_persistent_cache_min_entry_size_bytes", -1)
 
 
+def device(x, dtype=None):
+    """Host data as a JAX array without compiling anything: numpy conversion, then
+    ``jax.device_put``. (``jnp.asarray`` of a numpy array compiles a conversion kernel per shape:
+    0.07-0.25 s each on a cold start, and a solve made a dozen of them.) JAX arrays and tracers
+    pass through (cast when ``dtype`` differs)."""
+    import jax
+    import numpy as np
+
+    if isinstance(x, (jax.Array, jax.core.Tracer)):
+        return x if dtype is None or x.dtype == np.dtype(dtype) else x.astype(dtype)
+    return jax.device_put(np.asarray(x, dtype=None if dtype is None else np.dtype(dtype)))
+
+
 def compile_cache_note() -> str | None:
     """What :func:`use_jax` did about the compile cache (None before it ran): the folder in use,
     or why the cache is off."""

@@ -65,7 +65,7 @@ def _reward_jit(op, base, cols, masks, scale):
 def rewards_on(op, parts: Sequence[RewardParts]) -> jax.Array:
     """``(n, k)`` rewards of the streams ``parts`` under operator ``op``."""
     config.use_jax()
-    return jnp.stack([_reward_jit(op, jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale)
+    return jnp.stack([_reward_jit(op, config.device(p.base), config.device(p.cols), config.device(p.masks), p.scale)
                       for p in parts], axis=1)
 
 
@@ -155,8 +155,8 @@ def _rhs_draws(op, stacked, parts_arrays):
 def rewards_for_draws(op, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts]) -> jax.Array:
     """Rewards ``(D, n, k)`` of the streams ``parts`` under each draw's operator."""
     config.use_jax()
-    arrays = tuple((jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale) for p in parts)
-    return _rhs_draws(op, {k: jnp.asarray(v) for k, v in stacked.items()}, arrays)
+    arrays = tuple((config.device(p.base), config.device(p.cols), config.device(p.masks), p.scale) for p in parts)
+    return _rhs_draws(op, {k: config.device(v) for k, v in stacked.items()}, arrays)
 
 
 def draw_rewards(model, stacked: Mapping[str, np.ndarray], streams: Sequence[str]) -> jax.Array:
@@ -210,12 +210,12 @@ def solve_draws(model, stacked: Mapping[str, np.ndarray],
     D = int(next(iter(stacked.values())).shape[0]) if stacked else 0
     rhs_of = rhs if callable(rhs) else None
     if rhs_of is None:
-        rhs = jnp.asarray(rhs)
+        rhs = config.device(rhs)
         D = rhs.shape[0]
     n, k = np.shape(x0)
     beta = jnp.float64(model.beta)
     if n <= DENSE_MAX:
-        tabs = {a: jnp.asarray(v) for a, v in stacked.items()}
+        tabs = {a: config.device(v) for a, v in stacked.items()}
         if rhs_of is not None:
             rhs = rhs_of(tabs)
         x, res = _dense_draws(model.operator, tabs, rhs, beta, transpose=transpose)
@@ -230,16 +230,16 @@ def solve_draws(model, stacked: Mapping[str, np.ndarray],
     chunks = -(-D // max(DRAW_CHUNK, b))
     size = -(-(-(-D // chunks)) // b) * b  # D spread evenly over the chunks, in whole batches
     pc = point_preconditioner(model, transpose)
-    base = {a: jnp.asarray(t) for a, t in model.tables.items() if a not in stacked}
+    base = {a: config.device(t) for a, t in model.tables.items() if a not in stacked}
     static = dict(tol=tol, restart=restart, max_iter=max_iter, batch=b, transpose=transpose, has_pc=pc is not None)
-    x0j, betaj = jnp.asarray(x0), beta
+    x0j, betaj = config.device(x0), beta
     X = np.empty((D, n, k))
     it, ap, res, st = (np.empty(D, dtype=np.int64), np.empty(D, dtype=np.int64), np.empty(D), np.empty(D, dtype=np.int64))
     compile_s, t_start = 0.0, time.perf_counter()
     for s0 in range(0, D, size):
         m = min(size, D - s0)
         idx = np.minimum(np.arange(s0, s0 + size), D - 1)  # the last chunk repeats its last draw
-        tabs = {a: jnp.asarray(np.asarray(v)[idx]) for a, v in stacked.items()}
+        tabs = {a: config.device(np.asarray(v)[idx]) for a, v in stacked.items()}
         args = (model.operator, pc, tabs, rhs_of(tabs) if rhs_of is not None else rhs[idx], x0j, betaj, base)
         exe, c = compiled(_gmres_draws, args, static)
         compile_s += c
@@ -270,5 +270,5 @@ def _horizon_draws(op, stacked, rhs, beta, horizon):
 def horizon_draws(model, stacked: Mapping[str, np.ndarray], rhs, horizon: int) -> np.ndarray:
     """H-period values of every draw: ``(D, n, k)``."""
     config.use_jax()
-    tabs = {a: jnp.asarray(v) for a, v in stacked.items()}
-    return np.asarray(_horizon_draws(model.operator, tabs, jnp.asarray(rhs), jnp.float64(model.beta), int(horizon)))
+    tabs = {a: config.device(v) for a, v in stacked.items()}
+    return np.asarray(_horizon_draws(model.operator, tabs, config.device(rhs), jnp.float64(model.beta), int(horizon)))

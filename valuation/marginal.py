@@ -93,9 +93,9 @@ def table_gradients(model, lam: np.ndarray, v: np.ndarray, parts: RewardParts) -
     config.use_jax()
     import jax.numpy as jnp
 
-    tabs = {a: jnp.asarray(t) for a, t in model.tables.items()}
-    g = _table_gradients(model.operator, tabs, jnp.asarray(lam), jnp.asarray(v), jnp.float64(model.beta),
-                         jnp.asarray(parts.base), jnp.asarray(parts.cols), jnp.asarray(parts.masks), parts.scale)
+    tabs = {a: config.device(t) for a, t in model.tables.items()}
+    g = _table_gradients(model.operator, tabs, config.device(lam), config.device(v), jnp.float64(model.beta),
+                         config.device(parts.base), config.device(parts.cols), config.device(parts.masks), parts.scale)
     return {a: np.asarray(x) for a, x in g.items()}
 
 

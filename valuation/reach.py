@@ -56,13 +56,12 @@ def reachable(model, max_steps: int = 100_000) -> np.ndarray:
 
         config.use_jax()
         import jax
-        import jax.numpy as jnp
 
         op = model.operator.with_tables(masks).transpose()
         push = jax.jit(lambda o, v: o.mv(v) > 0)
 
         def step(v: np.ndarray) -> np.ndarray:
-            return np.asarray(push(op, jnp.asarray(v, dtype=jnp.float64)))
+            return np.asarray(push(op, config.device(v, np.float64)))
 
     for _ in range(max_steps):
         grown = x | step(x)

@@ -110,7 +110,7 @@ def stationary_distribution(op, block_weights: np.ndarray | None = None, *, tol:
         res = float(np.max(np.abs(A @ x - u)) / np.max(np.abs(u)))
         ok = np.isfinite(res) and res < 1e-8
     else:
-        x, res, st = _bordered_gmres(op, jnp.asarray(u), F, tol, max_iter)
+        x, res, st = _bordered_gmres(op, config.device(u), F, tol, max_iter)
         x = np.asarray(x)
         ok = int(st) == 0
     if not ok or np.min(x) < -1e-8 or not np.all(np.isfinite(x)):
