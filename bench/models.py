@@ -48,7 +48,7 @@ def spec_dict(markets: int, tenure: int, bands: int) -> dict:
             "engagement": {"kind": "chance", "levels": [f"e{i}" for i in range(5)],
                            "given": ["next.status", "engagement"], "moves": _within(5, 2, "e{:d}")},
             # the rule "a band moves at most two levels a month" makes the band an offsets step
-            # (rules/operator.py) instead of a dense contraction over all its levels
+            # (rules/steps.py) instead of a dense contraction over all its levels
             "band": {"kind": "chance", "levels": [f"b{i:02d}" for i in range(bands)], "given": ["band"],
                      "moves": _within(bands, 2, "b{:02d}")},
         },

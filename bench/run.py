@@ -170,7 +170,7 @@ def main() -> None:
     _write(OUT / "solve.json", doc)
     print(f"\nwrote {OUT / 'solve.json'}")
     if not args.skip_others:
-        for extra in ("fit_bench.py", "valuation_bench.py", "serve_bench.py"):
+        for extra in ("fit_bench.py", "valuation_bench.py", "serve_bench.py", "backtest_bench.py"):
             if (HERE / extra).exists():
                 print(f"\n== {extra} ==", flush=True)
                 subprocess.run([sys.executable, str(HERE / extra)], check=False)

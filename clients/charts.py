@@ -41,7 +41,8 @@ def _plt():
     return plt
 
 
-def _money(unit: str):
+def thousands():
+    """A tick formatter with thousands separators and no decimals: ``1,750``."""
     from matplotlib.ticker import FuncFormatter
 
     return FuncFormatter(lambda v, _: f"{v:,.0f}")
@@ -162,7 +163,7 @@ def chart_value_by_tenure(data: Mapping[str, Any]) -> bytes | None:
             ax.set_xlabel(f"{axis_name} ({data['model']['period']}s)")
         if k % ncol == 0:
             ax.set_ylabel(f"value V ({unit})")
-        ax.yaxis.set_major_formatter(_money(unit))
+        ax.yaxis.set_major_formatter(thousands())
         ax.set_ylim(bottom=0)
     for k in range(len(markets), nrow * ncol):
         axes[k // ncol][k % ncol].set_visible(False)
@@ -218,7 +219,7 @@ def chart_acquisition(data: Mapping[str, Any]) -> bytes | None:
     ax.set_xlabel("market and plan joined" + (f" ({', '.join(blocked)}: not joined directly under the move rules)"
                                               if blocked else ""))
     ax.set_ylabel(f"value of one acquisition ({data['unit']})")
-    ax.yaxis.set_major_formatter(_money(data["unit"]))
+    ax.yaxis.set_major_formatter(thousands())
     ax.set_ylim(0, top * 1.05)
     ax.grid(axis="x", visible=False)
     ax.set_title(f"Value of an acquisition by market and plan, beside the naive figures ({data['stream']})")
@@ -262,7 +263,7 @@ def chart_upgrade(data: Mapping[str, Any]) -> bytes | None:
     ax.set_xlim(-0.6, len(markets) - 0.4)
     ax.grid(axis="x", visible=False)
     ax.set_ylabel(f"value per member ({data['unit']})")
-    ax.yaxis.set_major_formatter(_money(data["unit"]))
+    ax.yaxis.set_major_formatter(thousands())
     ax.set_title(f"Value of a plan upgrade per member, members in their long-run mix ({data['stream']})")
     sub.legend(title="plan move" + (f" (whiskers: {data['level']:.0%} interval)" if data["model"]["draws"] else ""),
                loc="outside lower center", ncol=min(len(moves), 4), frameon=False)

@@ -10,10 +10,11 @@ embedded as a PNG data URI, so the page is one file that can be mailed or archiv
 also written to ``charts/`` beside it. :func:`build_report` does it all and writes the directory
 atomically.
 
-Another section (a backtest: observed against predicted) plugs in at three places: its result
-under its key in :data:`stateworth.valuation.summary.EXTRA_SECTIONS` (passed as ``extra``), its
-charts in :data:`stateworth.clients.charts.CHARTS`, and its template ``templates/<key>.html.j2``,
-which the page includes when the data holds that key.
+A result computed outside the valuation layer plugs in as an extra section (the backtest:
+observed against predicted, ``build_report(..., backtest=FILE)``): its result under its key in
+:data:`stateworth.valuation.summary.EXTRA_SECTIONS` (``extra``), the module drawing its charts in
+:data:`EXTRA_CHARTS`, and its template ``templates/<key>.html.j2``, which the page includes when
+the data hold that key.
 
 No account identifiers appear anywhere: a model holds tables, not accounts, and fields of
 ``diagnostics.json`` whose names look like identifiers are left out.
@@ -54,6 +55,8 @@ CAUTIONS = [
 _ID_WORDS = ("account", "customer_id", "user_id", "member_id", "email", "name_of")
 #: rows of a list in diagnostics.json shown on the page (the rest stay in the file)
 MAX_ROWS = 60
+#: extra section -> the module that draws its charts (``charts(result) -> {name: PNG or None}``)
+EXTRA_CHARTS = {"backtest": "stateworth.clients.backtest_page"}
 
 
 def clean(doc: Any) -> Any:
@@ -210,6 +213,11 @@ def _prob(entry: Mapping[str, Any]) -> str:
     return f"{lo:.4f}" if abs(hi - lo) < 5e-5 else f"{lo:.4f} to {hi:.4f}"
 
 
+def _amount(x: Any, unit: str) -> str:
+    """A figure in its unit: whole accounts, else two decimals."""
+    return _num(float(x), 0 if unit == "accounts" else 2)
+
+
 def _mix(landing: Sequence[Mapping[str, Any]] | None) -> str:
     """A landing mix as ``engagement: light 60%, none 40%`` (one axis named once), or
     ``engagement=light band=2 30%, ...`` over several axes."""
@@ -236,8 +244,14 @@ def _environment():
                              undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True,
                              keep_trailing_newline=True)
     env.filters.update({"num": _num, "sci": _sci, "pct": _pct, "iv": _iv, "prob": _prob, "mix": _mix,
-                        "cell": _cell_text})
+                        "cell": _cell_text, "amount": _amount})
     return env
+
+
+def render_template(name: str, data: Mapping[str, Any], charts: Mapping[str, bytes | None], **more: Any) -> str:
+    """Fill ``templates/<name>`` with ``data`` and the charts as data URIs (autoescaped)."""
+    return _environment().get_template(name).render(data=data, charts={k: data_uri(v) for k, v in charts.items()},
+                                                    **more)
 
 
 def data_uri(png: bytes | None) -> str | None:
@@ -249,9 +263,8 @@ def render_html(data: Mapping[str, Any], charts: Mapping[str, bytes | None]) -> 
     diag = data.get("diagnostics")
     fit_view = fit_diagnostics_view(diag) if isinstance(diag, Mapping) else None
     generic = None if diag is None or fit_view is not None else generic_diagnostics_view(diag)
-    template = _environment().get_template("report.html.j2")
-    return template.render(data=data, charts={k: data_uri(v) for k, v in charts.items()}, fit=fit_view,
-                           generic=generic, extra_sections=[k for k in _extra_keys() if data.get(k)])
+    return render_template("report.html.j2", data, charts, fit=fit_view, generic=generic,
+                           extra_sections=[k for k in _extra_keys() if data.get(k)])
 
 
 def _extra_keys() -> tuple[str, ...]:
@@ -261,17 +274,27 @@ def _extra_keys() -> tuple[str, ...]:
 
 
 def draw_charts(data: Mapping[str, Any]) -> dict[str, bytes | None]:
-    """Every chart of :data:`stateworth.clients.charts.CHARTS` for the data."""
+    """Every chart of :data:`stateworth.clients.charts.CHARTS` for the data, and those of each
+    extra section the data hold (:data:`EXTRA_CHARTS`)."""
+    import importlib
+
     from stateworth.clients.charts import CHARTS
 
-    return {name: fn(data) for name, fn in CHARTS.items()}
+    out = {name: fn(data) for name, fn in CHARTS.items()}
+    for key, module in EXTRA_CHARTS.items():
+        if data.get(key) is not None:
+            out.update(importlib.import_module(module).charts(data[key]))
+    return out
 
 
 def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | None = None,
                  valuer=None, top: int = 12, level: float = 0.9, progress: bool = False,
-                 extra: Mapping[str, Any] | None = None) -> Path:
+                 backtest: str | Path | None = None, extra: Mapping[str, Any] | None = None) -> Path:
     """Solve (unless ``valuer`` is given), collect, draw and write ``out_dir`` atomically:
     ``report.html`` (self-contained), ``charts/*.png``, ``report.json``. Returns the page's path.
+    ``backtest``: a ``backtest.json`` from ``stateworth backtest -o DIR``, shown as a section of its
+    own (observed against predicted with bands, retention by join cohort); ``extra``: results of
+    the extra sections by key, as they are.
 
     ``out_dir`` may be missing, empty, or an earlier report (replaced); anything else is refused
     with an ArtifactError so that no unrelated folder is overwritten."""
@@ -283,6 +306,10 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
         if entries and "report.html" not in entries:
             raise ArtifactError("exists, is not empty and holds no earlier report; pick a new directory",
                                 where=str(out_dir))
+    if backtest is not None:
+        from stateworth.clients.backtest_page import load_result
+        # read before the solve: a wrong file fails fast
+        extra = {**(extra or {}), "backtest": load_result(backtest)}
     if valuer is None:
         from stateworth.clients.commands._common import load_valuer
         valuer = load_valuer(str(model_dir))

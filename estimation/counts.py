@@ -42,7 +42,7 @@ def counter_sql(spec, lay: Layout, axis: str, s: str, sp: str) -> tuple[str, str
     With ``r`` the reset flags and ``a`` the advance flags along an account's history, the
     counter is ``min(cap, base + sum of a over the rows since the last reset, not counting reset
     rows)``, where base is :func:`counter_start` before any reset and 0 after; this equals
-    iterating :func:`stateworth.rules.operator.counter_index` row by row."""
+    iterating :func:`stateworth.rules.counters.counter_index` row by row."""
     ax = spec.axes[axis]
     st = spec.axis_levels(spec.status_axis)
     flags = spec.member_flags()

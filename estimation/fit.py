@@ -48,7 +48,9 @@ class FitOptions:
     count; ``gaps``: a gap in an account's history is an ``"error"`` or a ``"non_member"``
     period; ``draws``: posterior draws of every table (0 = none); ``seed`` for the draws;
     ``engine``: where the counting query runs, the embedded DuckDB (default) or Spark SQL
-    (:mod:`.spark`; identical counts, hence the same model hash)."""
+    (:mod:`.spark`; identical counts, hence the same model hash); ``until``: fit on the periods
+    up to and including this period index only (``Panel.p_min`` scale), as if the panel ended
+    there: the calibration months of a backtest (:mod:`.backtest`)."""
 
     strength: float | Literal["auto"] = "auto"
     forbidden: Literal["error", "drop"] = "error"
@@ -57,6 +59,7 @@ class FitOptions:
     seed: int = 0
     engine: Literal["duckdb", "spark"] = "duckdb"
     threads: int | None = None
+    until: int | None = None
 
 
 @dataclass
@@ -214,7 +217,7 @@ def _inputs(spec: Spec, panel_path, markets_path, options: FitOptions, con, bar,
         attempt(lambda: _raise(PanelError(f"axes.{status}.given must include '{status}' (the current status) to fit "
                                           "from a panel", where="spec")))
     stage("read panel")
-    panel = attempt(lambda: load_panel(spec, panel_path, gaps=options.gaps, con=con))
+    panel = attempt(lambda: load_panel(spec, panel_path, gaps=options.gaps, con=con, until=options.until))
     if panel is _FAILED:
         return None
     done()

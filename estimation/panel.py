@@ -330,9 +330,14 @@ def gap_example(con) -> tuple[int, int, int] | None:
     return _first(con, f"SELECT _row, _pp, p FROM {CODED} WHERE p - _pp > 1 ORDER BY _row LIMIT 1")
 
 
-def load_panel(spec: Spec, path: str | Path | TableSource, *, gaps: GapPolicy = "error", con=None) -> Panel:
+def load_panel(spec: Spec, path: str | Path | TableSource, *, gaps: GapPolicy = "error", con=None,
+               until: int | None = None) -> Panel:
     """Validate and code a panel (see the module docstring). Raises :class:`PanelError` naming
-    the file, row and column of the first problem (``problems`` lists all found)."""
+    the file, row and column of the first problem (``problems`` lists all found).
+
+    ``until``: keep only the periods up to and including this period index (the scale of
+    :attr:`Panel.p_min`), as if the file ended there: a backtest's calibration months. Rows
+    keep their file row numbers."""
     if gaps not in GAP_POLICIES:
         raise PanelError(f"unknown gap policy '{gaps}'; use one of {', '.join(GAP_POLICIES)}", where="gaps")
     src, path = path, str(path)
@@ -356,8 +361,11 @@ def load_panel(spec: Spec, path: str | Path | TableSource, *, gaps: GapPolicy = 
     has_rev = "revenue" in cols
     sel.append(f"TRY_CAST({_q('revenue')} AS DOUBLE) AS revenue" if has_rev else "CAST(NULL AS DOUBLE) AS revenue")
     base = [x.rsplit(" AS ", 1)[-1] for x in sel]
-    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS "
-                + sequence_sql(lay, f"(SELECT {', '.join(sel)} FROM raw) c", base))
+    coded = f"(SELECT {', '.join(sel)} FROM raw) c"
+    if until is not None:
+        # rows with an unreadable period stay, so that validation still reports them
+        coded = f"(SELECT * FROM {coded} WHERE p IS NULL OR p <= {int(until)}) c"
+    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS " + sequence_sql(lay, coded, base))
     if _coded_flags(con, lay, cols):
         probs, _ = panel_problems(spec, src, con)
         if not probs:  # pragma: no cover - the two checks disagree: a bug, not bad input

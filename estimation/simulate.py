@@ -61,12 +61,16 @@ def _draw(rng: np.random.Generator, probs: np.ndarray) -> np.ndarray:
 
 
 def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start: str | None = None,
-                   tables: dict[str, np.ndarray] | None = None) -> Simulation:
+                   tables: dict[str, np.ndarray] | None = None,
+                   later: tuple[int, dict[str, np.ndarray]] | None = None) -> Simulation:
     """Simulate ``periods`` periods of the spec (months, ISO weeks, quarters or years) of
     ``population`` addressable people (see the module doc). ``start``: the first panel period,
     a label of the spec's period or a date in it (default: the first period of 2024); the
     panel's ``period`` column holds the spec's labels (``2024-01``, ``2024-W01``, ``2024-Q1``,
-    ``2024``)."""
+    ``2024``).
+
+    ``later = (t, tables)``: from the move into panel period ``t`` (0-based) on, the given
+    factors are drawn from these tables instead: a world that changes (for backtests)."""
     import pyarrow as pa
 
     if population < 1 or periods < 2:
@@ -103,11 +107,13 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
     joined = np.zeros(N, dtype=bool)
     price = _prices(spec)
     chunks: list[dict[str, np.ndarray]] = []
+    changed = {**truth, **{a: np.asarray(v, dtype=np.float64) for a, v in later[1].items()}} if later else truth
     for t in range(periods):
         nxt: dict[str, np.ndarray] = {}
+        now = changed if later and t >= later[0] else truth
         for f in factors:
             idx = [nxt[g[5:]] if g.startswith("next.") else cur[g] for g in f.given]
-            T = truth[f.axis]
+            T = now[f.axis]
             flat = np.ravel_multi_index(idx, f.shape[:-1]) if idx else np.zeros(N, dtype=np.int64)
             nxt[f.axis] = _draw(rng, T.reshape(-1, f.shape[-1])[flat])
         for a in grid:

@@ -23,7 +23,7 @@ from stateworth.rules.rewards import reward_vector
 from stateworth.rules.spec import Spec
 
 if TYPE_CHECKING:
-    from stateworth.rules.operator import GridOperator
+    from stateworth.rules.grid_operator import GridOperator
 
 FORMAT = "stateworth.compiled/1"
 
@@ -62,7 +62,8 @@ class CompiledModel:
 
     def __init__(self, spec: Spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray], beta: float,
                  hash: str, metadata: dict[str, Any] | None = None, draws: dict[str, np.ndarray] | None = None,
-                 operator: "GridOperator | None" = None, rewards: dict[str, np.ndarray] | None = None) -> None:
+                 operator: "GridOperator | None" = None, rewards: dict[str, np.ndarray] | None = None,
+                 reuse_plan: bool = False) -> None:
         self.spec = spec
         self.grid = grid
         self.factors = factors
@@ -75,6 +76,9 @@ class CompiledModel:
         self._rewards = None if rewards is None else dict(rewards)
         self._csr = None
         self._lock = threading.Lock()
+        #: build the operator's plan through the small cache of recent plans (sub-models of one
+        #: spec, built again and again by transition changes)
+        self.reuse_plan = bool(reuse_plan)
 
     def replace(self, **changes: Any) -> "CompiledModel":
         """A copy with some attributes replaced (``operator`` and ``rewards`` rebuilt on use unless
@@ -89,11 +93,9 @@ class CompiledModel:
         if self._operator is None:
             with self._lock:
                 if self._operator is None:
-                    from stateworth.rules.operator import make_operator
-                    # the plan comes from a small cache: sub-models of one spec (the fixed cells a
-                    # transition change touches) are built again and again
+                    from stateworth.rules.grid_operator import make_operator
                     self._operator = make_operator(self.spec, self.grid, self.factors, self.tables,
-                                                   reuse_plan=True)
+                                                   reuse_plan=self.reuse_plan)
         return self._operator
 
     @property

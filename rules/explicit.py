@@ -67,6 +67,8 @@ def pattern(spec, grid: Grid, factors: list[Factor], supports: list[dict[str, np
     for f in factors:
         m = np.zeros(f.shape, dtype=bool)
         for t in supports:
+            if f.axis not in t:  # e.g. posterior draws of some factors only
+                continue
             a = np.asarray(t[f.axis])
             m |= (a != 0) if a.shape == tuple(f.shape) else np.any(a != 0, axis=0)
         support[f.axis] = m.reshape(-1)

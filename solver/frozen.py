@@ -12,7 +12,7 @@ GMRES needed 37-46 iterations against 11-15 (measured on the 10^5 and 3.6 x 10^5
 reference grids; with this space, 17).
 
 Coarse space: for the *frozen statuses* (those no counter advances on arrival, see
-:func:`rules.operator.counter_flags`) one aggregate per fixed cell, counter levels (all
+:func:`rules.counters.counter_flags`) one aggregate per fixed cell, counter levels (all
 counters, kept whole), frozen status and the most persistent chance axes (up to
 :data:`MAX_BLOCK` per block), averaging over the other axes. The Galerkin matrix keeps only moves
 that stay in the cluster (frozen status to frozen status with every counter unchanged); moves
@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import string
 from dataclasses import dataclass
+from functools import partial
 from typing import Mapping
 
 import jax
@@ -195,20 +196,13 @@ def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.
 _frozen_matrix_jit = jax.jit(frozen_matrix, static_argnums=0)
 
 
-@jax.tree_util.register_pytree_node_class
+@partial(jax.tree_util.register_dataclass, data_fields=["inv"], meta_fields=["layout"])
+@dataclass(frozen=True, eq=False)
 class FrozenCoarse:
     """The frozen-cluster correction as a pytree: ``inv`` ``(blocks, K2, K2)`` is its leaf."""
 
-    def __init__(self, layout: FrozenLayout, inv: jax.Array) -> None:
-        self.layout = layout
-        self.inv = inv
-
-    def tree_flatten(self):
-        return (self.inv,), self.layout
-
-    @classmethod
-    def tree_unflatten(cls, layout, children):
-        return cls(layout, children[0])
+    layout: FrozenLayout
+    inv: jax.Array
 
     def astype(self, dtype) -> "FrozenCoarse":
         return FrozenCoarse(self.layout, self.inv.astype(dtype))

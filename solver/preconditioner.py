@@ -32,11 +32,15 @@ from __future__ import annotations
 import string
 from dataclasses import dataclass
 from functools import partial
+from typing import TYPE_CHECKING
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 from stateworth import config
+
+if TYPE_CHECKING:
+    from stateworth.solver.frozen import FrozenCoarse
 
 #: largest coarse block (key combinations per fixed cell); its inverse costs K^3 per cell. With
 #: deep smoothing a smaller coarse space loses little (3.6 x 10^5 states: K = 100 took 12
@@ -250,23 +254,16 @@ def _coarse_inverse(C: jax.Array, beta: jax.Array, transpose: bool, dtype=jnp.fl
     return jnp.linalg.inv((jnp.eye(K)[None] - beta * C).astype(dtype))
 
 
-@jax.tree_util.register_pytree_node_class
+@partial(jax.tree_util.register_dataclass, data_fields=["inv", "frozen"], meta_fields=["coarse", "smooth"])
+@dataclass(frozen=True, eq=False)
 class TwoLevel:
     """The preconditioner as a pytree: ``inv`` blocks ``(F, K, K)`` are leaves, and so is the
     optional frozen-cluster correction (:mod:`.frozen`; None when not used)."""
 
-    def __init__(self, coarse: Coarse, inv: jax.Array, smooth: int, frozen=None) -> None:
-        self.coarse = coarse
-        self.inv = inv
-        self.smooth = smooth
-        self.frozen = frozen
-
-    def tree_flatten(self):
-        return (self.inv, self.frozen), (self.coarse, self.smooth)
-
-    @classmethod
-    def tree_unflatten(cls, aux, children):
-        return cls(aux[0], children[0], aux[1], children[1])
+    coarse: Coarse
+    inv: jax.Array
+    smooth: int
+    frozen: FrozenCoarse | None = None
 
     def astype(self, dtype) -> "TwoLevel":
         """The same preconditioner with its coarse inverses in ``dtype``."""

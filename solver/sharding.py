@@ -116,7 +116,7 @@ def put_sharded(plan: ShardPlan, x):
 
 def put_operator(plan: ShardPlan, op):
     """Place the operator's tables: sharded along the first fixed axis where they have it."""
-    from stateworth.rules.operator import GridOperator
+    from stateworth.rules.grid_operator import GridOperator
 
     arrays = {}
     given = {f"table.{f.axis}": op.plan.stored_dims(f"table.{f.axis}", tuple(f.given) + (f"next.{f.axis}",))

@@ -63,7 +63,7 @@ def restrict(model, block: Block, tables: Mapping[str, np.ndarray], rewards: Map
     given full-grid ``rewards`` vectors sliced to its states. Spec, beta and metadata are the
     full model's; the hash is left as the full model's (the block is a computational device)."""
     if block.full:
-        return model.replace(tables=dict(tables), rewards=dict(rewards) or None, draws={})
+        return model.replace(tables=dict(tables), rewards=dict(rewards) or None, draws={}, reuse_plan=True)
     grid = Grid(tuple(Axis(a.name, a.kind, tuple(a.levels[i] for i in block.levels[a.name]))
                       if a.kind == "fixed" else a for a in model.grid.axes))
     factors, sub = [], {}
@@ -73,4 +73,5 @@ def restrict(model, block: Block, tables: Mapping[str, np.ndarray], rewards: Map
         factors.append(nf)
         sub[f.axis] = slice_table(model, f, np.asarray(tables[f.axis]), block)
     return model.replace(grid=grid, factors=factors, tables=sub,
-                         rewards={k: np.asarray(v)[block.states] for k, v in rewards.items()} or None, draws={})
+                         rewards={k: np.asarray(v)[block.states] for k, v in rewards.items()} or None, draws={},
+                         reuse_plan=True)

@@ -16,6 +16,9 @@ page says so in its place. The charts (200 dpi, each stamped with the model vers
 unit and a caution, ready for a slide) are also written to OUT_DIR/charts/, the figures to
 OUT_DIR/report.json.
 
+With --backtest FILE (a backtest.json from `stateworth backtest -o DIR`) the page also shows the
+backtest: observed against predicted holdout figures with their bands, retention by join cohort.
+
 example:
   stateworth report demo-out/models/fitted -o out/report
   stateworth report demo-out/models/fitted -o out/report-margin --stream margin --level 0.8
@@ -30,6 +33,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--top", type=int, default=12, help="marginal transition values to list (default 12)")
     p.add_argument("--level", type=float, default=0.9,
                    help="interval level over the posterior draws, in (0, 1) (default 0.9)")
+    p.add_argument("--backtest", default=None, metavar="FILE",
+                   help="add a backtest's section: the backtest.json written by `stateworth backtest -o DIR`")
 
 
 def run(args: argparse.Namespace) -> int:
@@ -43,6 +48,6 @@ def run(args: argparse.Namespace) -> int:
         raise QueryError(f"--top must be at least 1 (got {args.top})", field="top")
     level = check_level(args.level)
     page = build_report(args.model, args.output, stream=args.stream, top=args.top, level=level,
-                        progress=sys.stderr.isatty())
+                        progress=sys.stderr.isatty(), backtest=args.backtest)
     print(f"wrote {page} (charts in {page.parent / 'charts'}, figures in {page.parent / 'report.json'})")
     return 0
