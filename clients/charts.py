@@ -102,7 +102,6 @@ def chart_value_by_tenure(data: Mapping[str, Any]) -> bytes | None:
     series = sec["series"]
     if not any(s["sold"] for s in series):
         return None
-    plt = _plt()
     from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
@@ -164,7 +163,8 @@ def chart_value_by_tenure(data: Mapping[str, Any]) -> bytes | None:
         if k % ncol == 0:
             ax.set_ylabel(f"value V ({unit})")
         ax.yaxis.set_major_formatter(thousands())
-        ax.set_ylim(bottom=0)
+    # once every panel is drawn: the shared scale then holds every market's lines and bands
+    axes[0][0].set_ylim(bottom=0)
     for k in range(len(markets), nrow * ncol):
         axes[k // ncol][k % ncol].set_visible(False)
     shown = [p for p in plans if any(s["plan"] == p and s["sold"] for s in series)]
@@ -191,7 +191,6 @@ def chart_acquisition(data: Mapping[str, Any]) -> bytes | None:
     rows = data["acquisition"]["rows"]
     if not any(r["sold"] for r in rows):
         return None
-    plt = _plt()
     labels = [f"{r['market']}\n{r['plan']}" if r["market"] is not None else r["plan"] for r in rows]
     x = list(range(len(rows)))
     wdt = 0.27
@@ -210,7 +209,8 @@ def chart_acquisition(data: Mapping[str, Any]) -> bytes | None:
            label='naive: V(after) alone')
     ax.bar([i + wdt for i in xs], [r["one_period"] for r in sold], wdt, color=ONE_PERIOD,
            label='naive: one period of cash')
-    top = max(max(r["member_value"] for r in sold), max(honest), 1e-9)
+    top = max(max(r["member_value"] for r in sold), max(honest),
+              max((r["interval"][1] for r in sold if r["interval"]), default=0.0), 1e-9)
     _not_sold_marks(ax, [i for i, r in enumerate(rows) if not r["sold"]],
                     [r["short"] for r in rows if not r["sold"]], top)
     ax.set_xticks(x, labels)
@@ -233,7 +233,6 @@ def chart_upgrade(data: Mapping[str, Any]) -> bytes | None:
     rows = data["plan_upgrade"]["rows"]
     if not any(r["sold"] for r in rows):
         return None
-    plt = _plt()
     moves = list(dict.fromkeys(f"{r['from']} \u2192 {r['to']}" for r in rows))
     markets = list(dict.fromkeys(r["market"] for r in rows))
     fig, sub = _figure(max(MIN_WIDTH, 1.5 * len(markets) + 2.5), 4.2)
@@ -277,7 +276,6 @@ def chart_marginal(data: Mapping[str, Any]) -> bytes | None:
     entries = sec["entries"]
     if not entries:
         return None
-    plt = _plt()
     labels = [f"{e['rank']}. {e['short']}" for e in entries][::-1]
     vals = [e["per_point"] for e in entries][::-1]
     fig, sub = _figure(max(MIN_WIDTH, 9.5), 0.36 * len(entries) + 1.6)
