@@ -398,8 +398,10 @@ class Questions:
               f"{self.product}; model tables: {source}):")
         print(format_table(["figure", "value", "90% interval", "meaning"], rows))
         print(f"\nreport: {page}")
-        print("  value by tenure per plan and market; acquisition by market beside the naive figures; plan")
-        print("  upgrades; ranked marginal transition values; fit diagnostics; solve statistics; assumptions.")
+        print("  value by tenure per plan and market; acquisition by market beside the naive figures and the")
+        print("  landing mix; plan upgrades; ranked marginal transition values; the long run; fit diagnostics;")
+        print("  solve statistics; assumptions. Its charts (report/charts/*.png, 200 dpi) carry the model")
+        print("  version, stream, unit and the caution, ready for a slide.")
         print(f"demo finished in {seconds:.0f} s.")
         print(CAUTION_LINE)
 

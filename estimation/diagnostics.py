@@ -2,8 +2,9 @@
 
 Overlap: a causal reading of "member vs non-member" at a conditioning cell needs the data to
 show moves into a member *and* into a non-member next status from that cell. Cells of the
-status factor that show moves but lack one of the two are listed with the share of all observed
-moves (the population share) that sits in them. Prior-dominated cells: cells with fewer observed
+status factor that show moves but lack one of the two are listed (at most ``MAX_LISTED``, those
+holding the most moves first) with the share of all observed moves (the population share) that
+sits in them. Prior-dominated cells: cells with fewer observed
 moves than the prior strength, so the fitted row is mostly the parent's.
 """
 
@@ -40,7 +41,9 @@ def overlap_report(spec, factor: Factor, fit: FactorFit, skip: np.ndarray | None
     if skip is not None:
         bad &= ~skip
     cells = []
-    for idx in np.argwhere(bad)[:MAX_LISTED]:
+    # the cells holding the most moves first: those are where a weak overlap matters most
+    order = np.argsort(-n[bad], kind="stable")
+    for idx in np.argwhere(bad)[order][:MAX_LISTED]:
         t = tuple(idx)
         cells.append({"cell": _cell_name(spec, factor, t), "moves": int(n[t]),
                       "share": float(n[t] / total) if total else 0.0,

@@ -15,6 +15,8 @@ posterior draw of its factor tables, the long-run mix), keep the result with the
   (one adjoint solve prices every transition and every factor entry);
 * ``stationary`` and ``long_run`` (the long-run state mix including non-members), and
   :func:`readout` for experiments (two fitted models, same spec).
+* :mod:`.summary`: the report's answers (values by tenure per plan and market, acquisitions by
+  market beside the naive figures, upgrades, ranked marginal values, long-run figures), JSON-ready.
 
 Every answer carries its unit (the model's currency, or member-months), the model version and,
 with draws, a percentile interval. Figures are model-based estimates under the model's causal

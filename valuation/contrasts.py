@@ -15,6 +15,7 @@ import numpy as np
 from stateworth.caution import CAUTION
 from stateworth.errors import QueryError
 from stateworth.rules.rewards import period_cash
+from stateworth.valuation import lookups
 from stateworth.valuation import states as st
 from stateworth.valuation.answer import Answer
 from stateworth.valuation.lookups import Coords, answer, coords, index, values
@@ -218,34 +219,48 @@ def describe_landing(solved: Solved, states: np.ndarray, weights: np.ndarray, to
     return out
 
 
+def landing_samples(solved: Solved, state: int, plan: str, stream: str, horizon: int | None = None
+                    ) -> tuple[float, float, np.ndarray | None, np.ndarray, np.ndarray]:
+    """The parts of a move into the landing mix on ``plan`` from flat state ``state`` (a state the
+    caller has checked): ``(V(after), V(before), per_draw, states, weights)``. V(after) is the
+    landing distribution's expectation of V (:func:`landing`); ``per_draw`` ``(D,)`` is
+    V(after) - V(before) within each posterior draw under that draw's own landing weights (None
+    without draws), so averages of several moves can take their interval over the draws."""
+    from stateworth.valuation.lookups import draw_values
+
+    i = int(state)
+    dst, w, wd = landing(solved, i, plan)
+    v_after = float(np.dot(w, values(solved, dst, stream, horizon)))
+    v_before = float(values(solved, np.array([i]), stream, horizon)[0])
+    per = None
+    if solved.draws is not None:
+        dv = draw_values(solved, dst, stream, horizon)
+        per = np.sum(dv * (wd if wd is not None else w[None, :]), axis=1) - draw_values(
+            solved, np.array([i]), stream, horizon)[:, 0]
+    return v_after, v_before, per, dst, w
+
+
 def landing_contrast(solved: Solved, state: Coords, plan: str, stream: str, horizon: int | None, level: float,
                      kind: str) -> Answer:
     """V(landing mix on ``plan``) - V(state): the after value is the landing distribution's
     expectation (:func:`landing`), within each posterior draw under that draw's own landing
     weights."""
     from stateworth.valuation.answer import percentile_interval
-    from stateworth.valuation.lookups import check_level, draw_values
+    from stateworth.valuation.lookups import check_level
 
     level = check_level(level)
     i = index(solved, state)
-    dst, w, wd = landing(solved, i, plan)
-    v_after = float(np.dot(w, values(solved, dst, stream, horizon)))
-    v_before = float(values(solved, np.array([i]), stream, horizon)[0])
+    v_after, v_before, per, dst, w = landing_samples(solved, i, plan, stream, horizon)
     interval = None
     details: dict[str, Any] = {"before": coords(solved, i), "after": coords(solved, int(dst[np.argmax(w)])),
                                "landing": describe_landing(solved, dst, w), "before_value": v_before,
                                "after_value": v_after}
-    if solved.draws is not None:
-        dv = draw_values(solved, dst, stream, horizon)
-        per = np.sum(dv * (wd if wd is not None else w[None, :]), axis=1) - draw_values(
-            solved, np.array([i]), stream, horizon)[:, 0]
+    if per is not None:
         lo, hi = percentile_interval(per, level)
         interval = (float(lo), float(hi))
-        from stateworth.valuation.lookups import draws_needed
-        need = draws_needed(level)
-        if solved.n_draws < need:
-            details["interval_note"] = (f"unreliable: {solved.n_draws} posterior draws, fewer than the {need} a "
-                                        f"{level:.0%} interval needs; fit with --draws {need} or more")
+        note = lookups.interval_note(solved, level)
+        if note:
+            details["interval_note"] = note
     return Answer(kind=kind, value=v_after - v_before, unit=solved.unit(stream), version=solved.version,
                   stream=stream, interval=interval, level=level, horizon=None if horizon is None else int(horizon),
                   details=details)

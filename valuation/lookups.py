@@ -40,6 +40,16 @@ def draws_needed(level: float) -> int:
     return int(np.ceil(2.0 / (1.0 - level) - 1e-9))
 
 
+def interval_note(solved: Solved, level: float) -> str | None:
+    """Why a percentile interval at ``level`` over the model's draws is unreliable (fewer draws than
+    :func:`draws_needed`), or None when it is not or the model has no draws."""
+    need = draws_needed(level)
+    if solved.draws is None or solved.n_draws >= need:
+        return None
+    return (f"unreliable: {solved.n_draws} posterior draws, fewer than the {need} a {level:.0%} interval needs; "
+            f"fit with --draws {need} or more")
+
+
 def index(solved: Solved, coords: Coords, *, reachable: bool = True) -> int:
     """Flat state index of a full coordinate (one level on every axis). With ``reachable`` (the
     default), a state the chain can never be in is refused (:func:`check_reachable`)."""
@@ -138,11 +148,9 @@ def answer(solved: Solved, kind: str, parts: Sequence[tuple[np.ndarray, np.ndarr
         d = sum(draw_values(solved, s, stream, horizon) @ w for s, w in parts)
         lo, hi = percentile_interval(d, level)
         interval = (float(lo), float(hi))
-        need = draws_needed(level)
-        if solved.n_draws < need:
-            details = {**details, "interval_note": f"unreliable: {solved.n_draws} posterior draws, fewer than the "
-                                                   f"{need} a {level:.0%} interval needs; fit with --draws {need} "
-                                                   "or more"}
+        note = interval_note(solved, level)
+        if note:
+            details = {**details, "interval_note": note}
     return Answer(kind=kind, value=val, unit=solved.unit(stream), version=solved.version, stream=stream,
                   interval=interval, level=level, horizon=None if horizon is None else int(horizon),
                   details=details)

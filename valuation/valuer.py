@@ -4,7 +4,8 @@ The queries are families of functions over a :class:`~stateworth.valuation.solve
 of every stream, of every posterior draw, and the long-run mix): :mod:`.lookups` (values of
 states), :mod:`.contrasts` (acquisition, plan change, win-back, engagement, any two states),
 :mod:`.cohorts` (cohort contrasts, campaigns), :mod:`.changes` (exact transition changes),
-:mod:`.marginal` (adjoint marginal values), :mod:`.longrun` (long-run mix). A Valuer holds one
+:mod:`.marginal` (adjoint marginal values), :mod:`.longrun` (long-run mix), :mod:`.summary` (the
+report's answers). A Valuer holds one
 Solved and the small caches those functions share (finite horizons in the Solved, weighted long-run
 mixes, reward parts of changed cells), and forwards to them; it adds no mathematics.
 
@@ -205,3 +206,11 @@ class Valuer:
     def long_run(self, weights: Any = None, fixed_weights: Mapping[str, float] | np.ndarray | None = None,
                  level: float = 0.9) -> dict[str, Any]:
         return longrun.long_run(self.solved, weights, fixed_weights, level, self._stationary)
+
+    # ---- the report's answers ----------------------------------------------------------------
+    def summary(self, stream: str | None = None, top: int = 12, level: float = 0.9,
+                extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+        """Every figure the report shows, JSON-ready (:func:`.summary.report_summary`)."""
+        from stateworth.valuation.summary import report_summary
+
+        return report_summary(self.solved, stream, top=top, level=level, extra=extra)

@@ -40,9 +40,9 @@ def run(args: argparse.Namespace) -> int:
     stream = c.default_stream(valuer, args.stream)
     selection = c.parse_selection(args.cohort)
     weights = c.cohort_weights(valuer, selection, args.basis)
-    from stateworth.clients.report import cycle_axes, pool_marginal
+    from stateworth.valuation.summary import cycle_axes, pool_marginal
 
-    pool = [] if args.per_cycle else cycle_axes(valuer.model)
+    pool = [] if args.per_cycle else cycle_axes(valuer.solved)
     res = valuer.marginal(weights, stream=stream, top=10**9 if pool else args.top)
     entries = pool_marginal(res.entries, pool)[:args.top]
     if args.json:
