@@ -14,7 +14,7 @@ venv: $(STAMP)
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install -q --upgrade pip
-	$(PY) -m pip install -q -e '.[test,db]'
+	$(PY) -m pip install -q -e '.[all,test]'
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -30,7 +30,9 @@ POSITIVE, NEGATIVE = "#1b7f5a", "#c0504d"
 
 
 def _plt():
-    import matplotlib
+    from stateworth.extras import need
+
+    matplotlib = need("matplotlib", "report", "the report's charts")
 
     matplotlib.use("Agg", force=True)
     import matplotlib.pyplot as plt

@@ -238,7 +238,9 @@ def _mix(landing: Sequence[Mapping[str, Any]] | None) -> str:
 
 
 def _environment():
-    import jinja2
+    from stateworth.extras import need
+
+    jinja2 = need("jinja2", "report", "the report page")
 
     env = jinja2.Environment(loader=jinja2.PackageLoader("stateworth.clients", "templates"), autoescape=True,
                              undefined=jinja2.StrictUndefined, trim_blocks=True, lstrip_blocks=True,

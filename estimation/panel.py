@@ -143,8 +143,9 @@ def connect(threads: int | None = None):
     """An in-memory DuckDB connection. Insertion order is not preserved (sorts and window
     passes run about a third faster); every query whose order matters says ORDER BY, and a
     CSV's row numbers are fixed once when it is read (:func:`_source`)."""
-    import duckdb
+    from stateworth.extras import need
 
+    duckdb = need("duckdb", "fit", "reading a panel")
     con = duckdb.connect(":memory:")
     if threads:
         con.execute(f"SET threads = {int(threads)}")

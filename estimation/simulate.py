@@ -71,7 +71,9 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
 
     ``later = (t, tables)``: from the move into panel period ``t`` (0-based) on, the given
     factors are drawn from these tables instead: a world that changes (for backtests)."""
-    import pyarrow as pa
+    from stateworth.extras import need
+
+    pa = need("pyarrow", "fit", "simulating a panel")
 
     if population < 1 or periods < 2:
         raise SpecError("simulate needs at least 1 person and 2 periods", where="--accounts/--periods")

@@ -68,8 +68,9 @@ def use_jax() -> None:
       written to a per-user folder and read back by later processes, so a command pays a
       compile once per shape and version of the code instead of on every call. Every compile is
       cached (no minimum time or size)."""
-    import jax
+    from stateworth.extras import need
 
+    jax = need("jax", "solve", "solving on the structured operator (large grids)")
     if not jax.config.jax_enable_x64:
         jax.config.update("jax_enable_x64", True)
     if "cache" not in _state:
