@@ -160,8 +160,10 @@ def pool_marginal(entries: Iterable[Any], pool: Sequence[str]) -> list[dict[str,
 
 
 def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | None = None,
-            top: int = 12, progress: bool = False) -> dict[str, Any]:
-    """Everything the page shows, as a JSON-ready dict (money in the model's currency)."""
+            top: int = 12, progress: bool = False, sensitivity: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """Everything the page shows, as a JSON-ready dict (money in the model's currency).
+    ``sensitivity``: ``{"low": valuer, "high": valuer}`` solved at the ends of the market-size
+    range (point values only); each acquisition figure is then shown at both."""
     from tqdm import tqdm
 
     model = valuer.model
@@ -246,13 +248,17 @@ def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | 
             naive = [valuer.naive_comparison(s, plan, stream=stream) for s in profile]
             h = _mean_answer(honest)
             mv = float(np.mean([n["member_value"] for n in naive]))
-            acq.append({"market": m, "plan": plan, "honest": h["value"], "interval": h["interval"],
+            sens = {f"honest_{k}_size": float(np.mean([sv.acquisition(s, plan, stream=stream).value for s in profile]))
+                    for k, sv in (sensitivity or {}).items()}
+            acq.append({"market": m, "plan": plan, "honest": h["value"], "interval": h["interval"], **sens,
                         "prospect_value": float(np.mean([a.value for a in pv])),
                         "member_value": mv,
                         "one_period": float(np.mean([n["one_period"] for n in naive])),
                         "ratio": mv / h["value"] if h["value"] > 0 else None})
     p0 = next(iter(prospects.values()))[0] if prospects else {}
-    data["acquisition"] = {"rows": acq,
+    joins = (diagnostics or {}).get("joins") if isinstance(diagnostics, Mapping) else None
+    data["acquisition"] = {"rows": acq, "size_range": bool(sensitivity),
+                           "band_assumption": (joins or {}).get("band_assumption") if isinstance(joins, Mapping) else None,
                            "profile": {k: v for k, v in p0.items()
                                        if grid.axis(k).kind not in ("cycle", "fixed")},
                            "cycles": [ax.name for ax in grid.axes if ax.kind == "cycle"]}
@@ -564,12 +570,18 @@ def _fit_diagnostics_html(diag: Mapping[str, Any]) -> str | None:
                            "their share of moves"], rows, [False, True, True, True, True, True]))
     j = diag["joins"]
     if j.get("hazard"):
-        rows = [[m, f"{h:.5f}", f"{j['hazard_high_size'][m]:.5f}", f"{j['hazard_low_size'][m]:.5f}",
-                 (j.get("first_joins") or {}).get(m)] for m, h in j["hazard"].items()]
-        parts.append("<h3>Never-member join rates</h3><p>First joins / (addressable size - accounts already "
-                     "tracked), per month; the range comes from the market-size range given to the fit.</p>"
-                     + _table(["market", "join rate", "at the high size", "at the low size", "first joins"], rows,
-                              [False, True, True, True, True]))
+        raw = j.get("hazard_raw") or {}
+        rows = [[m, None if m not in raw else f"{raw[m]:.5f}", f"{h:.5f}", f"{j['hazard_high_size'][m]:.5f}",
+                 f"{j['hazard_low_size'][m]:.5f}", (j.get("first_joins") or {}).get(m)] for m, h in j["hazard"].items()]
+        parts.append("<h3>Never-member join rates</h3><p>Raw: first joins / (addressable size - accounts already "
+                     "tracked), per month. Used: the rate the model uses, the raw counts shrunk towards the rate "
+                     "pooled over " + e(", ".join(j.get("pooling") or []) or "the cells") + " by the hierarchical "
+                     "prior (at-risk weighted over the market's cells). The range comes from the market-size range "
+                     "given to the fit.</p>"
+                     + _table(["market", "raw join rate", "join rate used", "used at the high size",
+                               "used at the low size", "first joins"], rows, [False, True, True, True, True, True]))
+        if j.get("band_assumption"):
+            parts.append(f"<p class=\"note\">{e(j['band_assumption'])}.</p>")
     return "\n".join(parts)
 
 
@@ -616,9 +628,17 @@ def render_html(data: Mapping[str, Any], charts: Mapping[str, bytes | None]) -> 
     m = data["model"]
     unit = data["unit"]
     e = html.escape
-    rows_acq = [[r["market"], r["plan"], r["honest"], _iv(r["interval"]), r["prospect_value"], r["member_value"],
+    sized = bool(data["acquisition"].get("size_range"))
+    rows_acq = [[r["market"], r["plan"], r["honest"], _iv(r["interval"])]
+                + ([f"{_fmt(r.get('honest_high_size'))} .. {_fmt(r.get('honest_low_size'))}"] if sized else [])
+                + [r["prospect_value"], r["member_value"],
                  r["one_period"], None if r["ratio"] is None else f"{r['ratio']:.1f}x"]
                 for r in data["acquisition"]["rows"]]
+    size_note = (" The interval carries the sampling uncertainty of the fitted tables at the given market sizes; "
+                 "the market sizes are inputs, not data, so their range is shown beside it as a sensitivity: the "
+                 "honest value refitted at the high and at the low size (more never-members at risk make each "
+                 "one less likely to join, so a prospect is worth less and an acquisition more)." if sized else "")
+    band_note = data["acquisition"].get("band_assumption")
     prof = ", ".join(f"{k}={v}" for k, v in data["acquisition"]["profile"].items())
     cyc = ", ".join(data["acquisition"]["cycles"])
     rows_upg = [[r["market"], f"{r['from']} -> {r['to']}", r["value"], _iv(r["interval"])]
@@ -660,11 +680,14 @@ non-member is worth something too, because many join later anyway.</p>
 <p>The honest value of acquiring a prospect is V(member) - V(prospect). The usual shortcuts are the
 "member value" V(member) alone (which ignores that the prospect would often have joined later
 anyway) and "one period of price" (which ignores that members stay). Prospect profile: {e(prof)};
-averaged with equal weight over {e(cyc) or 'no cycle axis'}.</p>
+averaged with equal weight over {e(cyc) or 'no cycle axis'}.{e(size_note)}</p>
+{f'<p class="note"><strong>Per-band values:</strong> {e(band_note)}.</p>' if band_note else ''}
 {_img('acquisition', charts.get('acquisition'), 'acquisition by market')}
-{_table(['market', 'plan joined', f'honest value ({unit})', 'interval', f'V(prospect) ({unit})',
-         f'naive member value ({unit})', f'naive one period ({unit})', 'member value / honest'],
-        rows_acq, [False, False, True, True, True, True, True, True])}
+{_table(['market', 'plan joined', f'honest value ({unit})', 'interval']
+        + ([f'at the high .. low market size ({unit})'] if sized else [])
+        + [f'V(prospect) ({unit})', f'naive member value ({unit})', f'naive one period ({unit})',
+           'member value / honest'],
+        rows_acq, [False, False, True, True] + ([True] if sized else []) + [True, True, True, True])}
 
 <h2>The value of a plan upgrade</h2>
 <p>V(member on the dearer plan) - V(member), at the same other coordinates (counters reset where the
@@ -705,6 +728,24 @@ as balanced) and where the prior dominated sparse cells.</p>
             f"<body>{body}</body></html>\n")
 
 
+def _size_range(valuer, model_dir: Path) -> dict[str, Any] | None:
+    """Point-only valuers of the model at the low and high market sizes (the status tables
+    ``stateworth fit`` stores as ``sensitivity.size_low/high.table.<status axis>``), or None."""
+    if not model_dir.is_dir() or not (model_dir / "manifest.json").is_file():
+        return None
+    from stateworth.rules import load_model
+    from stateworth.valuation import Valuer
+
+    model = valuer.model
+    _, extra = load_model(model_dir)
+    st = model.spec.status_axis
+    keys = {k: f"sensitivity.size_{k}.table.{st}" for k in ("low", "high")}
+    if not all(v in extra for v in keys.values()):
+        return None
+    return {k: Valuer.build(model.with_tables({st: extra[v]}), draws=False, streams=valuer.streams)
+            for k, v in keys.items()}
+
+
 def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | None = None,
                  valuer=None, top: int = 12, progress: bool = False) -> Path:
     """Solve (unless ``valuer`` is given), collect, draw and write ``out_dir`` atomically:
@@ -731,7 +772,8 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
         except (json.JSONDecodeError, UnicodeDecodeError) as e:
             raise ArtifactError(f"diagnostics.json is not valid JSON ({e}); refit or remove it",
                                 where=str(model_dir)) from None
-    data = collect(valuer, stream=stream, diagnostics=diagnostics, top=top, progress=progress)
+    data = collect(valuer, stream=stream, diagnostics=diagnostics, top=top, progress=progress,
+                   sensitivity=_size_range(valuer, model_dir))
     charts = {name: fn(data) for name, fn in CHARTS.items()}
     page = render_html(data, charts)
 

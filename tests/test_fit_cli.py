@@ -19,17 +19,17 @@ def test_simulate_then_fit(tmp_path, capsys):
     markets = tmp_path / "panel.markets.csv"
     assert panel.is_file() and markets.is_file()
     out = tmp_path / "model"
-    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out), "--draws", "5"]) == 0
+    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out), "--draws", "20"]) == 0
     text = capsys.readouterr().out
-    assert "join hazard" in text and "not accounting figures" in text
+    assert "join hazard" in text and "raw" in text and "used" in text and "not accounting figures" in text
     model, extra = load_model(out)
-    assert model.draws["status"].shape[0] == 5
+    assert model.draws["status"].shape[0] == 20
     assert {"sensitivity.size_low.table.status", "sensitivity.size_high.table.status"} <= set(extra)
     diag = json.loads((out / "diagnostics.json").read_text())
     assert diag["version"] == model.version and (out / "diagnostics.txt").is_file()
     # the same inputs give the same model (content hash)
     out2 = tmp_path / "model2"
-    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out2), "--draws", "5",
+    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(markets), "-o", str(out2), "--draws", "20",
                  "--quiet"]) == 0
     assert load_model(out2)[0].hash == model.hash
 
@@ -47,3 +47,19 @@ def test_fit_user_error_exits_1_and_writes_nothing(tmp_path, capsys):
     assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "p.markets.csv"), "-o", str(out),
                  "--strength", "lots"]) == 1
     assert main(["check", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "bad.csv")]) == 1
+
+
+def test_fit_refuses_fewer_draws_than_a_90_percent_interval_needs(tmp_path, capsys):
+    panel = tmp_path / "p.parquet"
+    assert main(["simulate", SPEC, "--accounts", "300", "--periods", "4", "-o", str(panel)]) == 0
+    out = tmp_path / "model"
+    # an equal-tailed 90 % interval needs 2 / (1 - 0.9) = 20 draws, one in each tail
+    # (docs/references.md: common practice, no source)
+    rc = main(["fit", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "p.markets.csv"), "-o", str(out),
+               "--draws", "19"])
+    err = capsys.readouterr().err.strip()
+    assert rc == 1 and "--draws" in err and "at least 20" in err and len(err.splitlines()) == 1
+    assert not out.exists()
+    assert main(["simulate", SPEC, "--accounts", "300", "--periods", "4", "--population-sample", "50",
+                 "-o", str(panel)]) == 1  # the mini spec has no propensity band to survey
+    assert "--population-sample" in capsys.readouterr().err

@@ -10,11 +10,15 @@ DESCRIPTION = """Estimate every factor table of a spec from an account panel (CS
 market-size table, and write the compiled model artifact to MODEL_DIR with diagnostics.json (and a
 readable diagnostics.txt) inside. Probabilities are Dirichlet posterior means shrunk towards the
 parent cell; never-member join rates come from first joins and the market sizes; a propensity
-band axis is fitted from its covariates. Nothing is written when fitting fails.
+band axis is fitted from its covariates. With --population (a sample of the addressable population:
+market, the band's covariates, optional weight) never-members are placed in propensity bands and
+their join hazard is estimated per market and band; without it, per-band acquisition values assume
+that never-members' joining does not depend on the band. Nothing is written when fitting fails.
 
 example:
   stateworth simulate examples/fitness.toml --accounts 20000 -o out/panel.parquet
   stateworth fit examples/fitness.toml --panel out/panel.parquet --markets out/panel.markets.csv -o out/model
+  stateworth fit SPEC --panel p.parquet --markets p.markets.csv --population survey.csv -o out/model
 """
 
 
@@ -22,6 +26,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("spec", help="the model spec (TOML)")
     p.add_argument("--panel", required=True, help="account panel (.csv or .parquet; see README 'Panel format')")
     p.add_argument("--markets", required=True, help="market-size table (market, size, low, high[, period])")
+    p.add_argument("--population", default=None,
+                   help="a sample of the addressable population (.csv or .parquet: market, the propensity band's "
+                        "covariates, optional weight): places never-members in bands for a join hazard by band")
     p.add_argument("-o", "--output", required=True, help="model directory to write")
     p.add_argument("--strength", default="auto",
                    help="prior strength in pseudo-moves per cell, or auto (empirical Bayes; default)")
@@ -29,7 +36,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="drop moves the spec's rules forbid (counted in the diagnostics) instead of failing")
     p.add_argument("--gaps", default="error", choices=["error", "non_member"],
                    help="a missing month inside an account's history: an error (default) or a former-member month")
-    p.add_argument("--draws", type=int, default=100, help="posterior draws of every table for intervals (default 100)")
+    p.add_argument("--draws", type=int, default=100,
+                   help="posterior draws of every table for intervals (default 100; 0 for none, else at least "
+                        "20: a 90%% interval needs 2 / (1 - 0.9) = 20)")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior draws (default 0)")
     p.add_argument("--engine", default="duckdb", choices=["duckdb", "spark"],
                    help="where the counting query runs: the embedded DuckDB (default) or Spark SQL (pyspark; "
@@ -53,13 +62,11 @@ def run(args: argparse.Namespace) -> int:
         except ValueError:
             raise PanelError(f"'{args.strength}' is not a number; give pseudo-moves > 0 or auto",
                              where="--strength") from None
-    if args.draws < 0:
-        raise PanelError("give 0 or more draws", where="--draws")
     spec = load_spec(args.spec)
     opts = FitOptions(strength=strength, forbidden="drop" if args.drop_forbidden else "error", gaps=args.gaps,
                       draws=args.draws, seed=args.seed, engine=args.engine)
     res = fit_to_dir(spec, args.panel, args.markets, args.output, opts, source=args.spec,
-                     progress=not args.quiet and sys.stderr.isatty())
+                     progress=not args.quiet and sys.stderr.isatty(), population=args.population)
     if not args.quiet:
         print(summary_text(res.diagnostics))
         print(f"wrote {args.output} (version {res.model.version}, {res.model.n_states:,} states)")
