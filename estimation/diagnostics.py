@@ -78,14 +78,16 @@ def summary_text(diag: dict) -> str:
     if diag.get("forbidden_dropped"):
         L.append(f"  {diag['forbidden_dropped']:,} moves the spec forbids were dropped (--drop-forbidden)")
     L.append("factors (prior strength alpha = pseudo-moves pulling a cell towards its parent; parents pool the "
-             "given axes in the order shown, chosen by marginal likelihood):")
+             "given axes in the order shown, chosen by marginal likelihood; each parent cell has its own alpha):")
     for p in diag["prior"]:
         L.append(f"  {p['factor']}: alpha {p['strength']:.3g}, {p['cells_with_moves']}/{p['cells']} cells with moves, "
                  f"{p['prior_dominated']} cells prior-dominated ({100 * p['share_prior_dominated']:.2f} % of moves)")
         if p.get("pooling"):
-            lv = ", ".join(f"{a} {s:.3g}" for a, s in zip(p["pooling"], p["strengths_by_level"]))
-            L.append(f"    pooled over (alpha towards that parent): {lv}; then the even spread "
-                     f"{p['strengths_by_level'][-1]:.3g}")
+            rng = p.get("strength_ranges_by_level") or [None] * len(p["strengths_by_level"])
+            lv = ", ".join(f"{a} {s:.3g}" + (f" ({r[0]:.3g}..{r[1]:.3g})" if r and r[0] != r[1] else "")
+                           for a, s, r in zip(p["pooling"], p["strengths_by_level"], rng))
+            L.append(f"    pooled over, in order (median alpha of the parent cells, 5..95 % over them): {lv}; "
+                     f"then the even spread {p['strengths_by_level'][-1]:.3g}")
     o = diag["overlap"]
     L.append(f"overlap: {o['cells_failing']} status cells lack moves into a member or a non-member status "
              f"({100 * o['share_failing']:.2f} % of moves); {o['cells_without_moves']} cells have no moves at all")

@@ -21,12 +21,20 @@ An axis the moves do not depend on (calendar month for members) is then pooled f
 sparse cell borrows from cells that move alike rather than from the cells of other engagement
 bands.
 
-*Strength* ``alpha_j`` (pseudo-moves), one per level: given, or its posterior on a log grid,
-``p(alpha_j | C) ~ L_j(alpha_j) alpha_j^(-1/2)`` with ``L_j`` the Dirichlet-multinomial marginal
-likelihood of the level's cells (:func:`strength_log_prior`); the point table uses its mode.
+*Strength* ``alpha_j`` (pseudo-moves), one per parent cell of each level (the pool its children
+form): given, or its posterior on a log grid,
+
+    p(alpha | C) ~ L_g(alpha) x L_j(alpha)^(1/G_j) x alpha^(-1/2),
+
+``L_g`` the Dirichlet-multinomial marginal likelihood of that parent's children, ``L_j`` the
+same over the whole level's G_j parents with moves (:func:`strength_log_prior` for the last
+factor). ``L_j^(1/G_j)`` is the strength an average parent of the level shows, weighing as much
+as one parent: a parent with few moves takes about the level's strength, and one whose children
+clearly move apart (one market whose former members come back on another plan) gets its own.
+The point table uses each posterior's mode.
 *Draws* carry the doubt about the strengths and the parents (Gelman et al. 2013, section 5.3:
 hyperparameters drawn from their marginal posterior on a grid, then the parameters given them):
-per draw, each ``alpha_j`` is drawn from its grid posterior, and top down
+per draw, every strength is drawn from its grid posterior, and top down
 ``theta_j ~ Dirichlet(E_j + alpha_j m_j)`` with ``m_j`` from the parent's *drawn* theta and
 ``E_j`` what the level's children tell it (:func:`_effective_counts`: each child counts as
 ``n (1 + alpha) / (n + alpha)`` moves, its Dirichlet-multinomial worth; the cells keep their own
@@ -52,11 +60,11 @@ STRENGTH_GRID = np.logspace(-1, 6, 71)
 @dataclass
 class FactorFit:
     """A fitted factor: ``table`` (posterior mean, factor shape), ``counts`` (same shape),
-    ``prior`` (the cells' prior mean m_0), ``strength`` (the cells' alpha_0), ``draws``
+    ``prior`` (the cells' prior mean m_0), ``strength`` (the cells' typical alpha_0), ``draws``
     ``(D, *shape)`` or None. ``pooling``: the given-axis positions in the order they are pooled
-    (first = the cells' parent); ``strengths``: alpha_j per level (posterior mode; cells first,
-    top last); ``strength_ranges``: per level the 5 % and 95 % points of alpha_j's grid
-    posterior (``None`` for a given strength)."""
+    (first = the cells' parent); ``strengths``: per level the median over its parent cells of
+    their strength (posterior mode; cells first, top last); ``strength_ranges``: per level the
+    5 % and 95 % points of those strengths over the parent cells (``None`` for a given strength)."""
 
     axis: str
     table: np.ndarray
@@ -67,6 +75,7 @@ class FactorFit:
     pooling: tuple[int, ...] = ()
     strengths: tuple[float, ...] = ()
     strength_ranges: tuple[tuple[float, float] | None, ...] = field(default_factory=tuple)
+    cell_strength: np.ndarray | None = None  # each cell's alpha_0 (its parent's), given-cell shape
 
     @property
     def cell_moves(self) -> np.ndarray:
@@ -75,7 +84,7 @@ class FactorFit:
     @property
     def prior_dominated(self) -> np.ndarray:
         """Cells whose prior weight exceeds their data (n < alpha), shape = the given cells."""
-        return self.cell_moves < self.strength
+        return self.cell_moves < (self.strength if self.cell_strength is None else self.cell_strength)
 
 
 def allowed_mask(spec, factor: Factor) -> np.ndarray:
@@ -150,6 +159,23 @@ def log_marginal(counts: np.ndarray, m: np.ndarray, alpha) -> np.ndarray | float
         terms = np.where(pos, gammaln(c + am) - gammaln(am), 0.0).sum(axis=1)
         out[i] = (gammaln(a) - gammaln(n + a) + terms).sum()
     return float(out[0]) if np.ndim(alpha) == 0 else out
+
+
+def cell_log_marginal(counts: np.ndarray, m: np.ndarray, grid: np.ndarray) -> np.ndarray:
+    """Each cell's Dirichlet-multinomial log marginal likelihood (up to a constant in alpha) at
+    every strength on ``grid``: ``(*cells, len(grid))``, 0 for cells without moves."""
+    shape = counts.shape[:-1]
+    c = counts.reshape(-1, counts.shape[-1])
+    mm = np.broadcast_to(m, counts.shape).reshape(c.shape)
+    keep = np.flatnonzero(c.sum(axis=1) > 0)
+    out = np.zeros((c.shape[0], len(grid)))
+    c, mm = c[keep], mm[keep]
+    n = c.sum(axis=1)
+    pos = mm > 0
+    for i, a in enumerate(grid):
+        am = np.where(pos, a * mm, 1.0)
+        out[keep, i] = gammaln(a) - gammaln(n + a) + np.where(pos, gammaln(c + am) - gammaln(am), 0.0).sum(axis=1)
+    return out.reshape(shape + (len(grid),))
 
 
 def strength_log_prior(grid: np.ndarray) -> np.ndarray:
@@ -229,7 +255,7 @@ def _effective_counts(levels: list[tuple[np.ndarray, np.ndarray]], order: tuple[
     for j, i in enumerate(order):
         C = out[-1]
         n = C.sum(axis=-1, keepdims=True)
-        al = alphas[j].reshape((-1,) + (1,) * (C.ndim - 1))
+        al = alphas[j][..., None]
         w = np.where(n > 0, (1.0 + al) / (n + al), 0.0)
         P, _, _ = pool_counts(C * w, levels[j][1][None], i + 1)
         out.append(P)
@@ -249,22 +275,29 @@ def posterior(counts: np.ndarray, allowed: np.ndarray, strength: float | str = "
     order = pooling_order(counts, allowed, strength, grid)
     levels = _levels(counts, allowed, order)
     L = len(levels)
-    alphas: list[float] = [0.0] * L
-    posts: list[np.ndarray | None] = [None] * L  # alpha_j's posterior weights on the grid
+    alphas: list[np.ndarray] = [np.empty(0)] * L  # per parent cell (keepdims shape: 1 on the pooled axis)
+    posts: list[np.ndarray | None] = [None] * L  # per parent cell, the strength's posterior weights on the grid
     priors: list[np.ndarray] = [np.empty(0)] * L
     theta = None
     for j in reversed(range(L)):  # top down: each level's prior is its parent's posterior mean
         C, A = levels[j]
         Af = A.astype(np.float64)
         m = _normalise(Af, Af) if theta is None else _normalise(np.where(A, theta, 0.0), Af)
+        gshape = (1,) * (C.ndim - 1) if j == L - 1 else tuple(1 if i == order[j] else n
+                                                               for i, n in enumerate(C.shape[:-1]))
         if auto:
-            lp = log_marginal(C, m, grid) + strength_log_prior(grid)
-            post = np.exp(lp - lp.max())
-            posts[j] = post / post.sum()
-            alphas[j] = float(grid[int(np.argmax(lp))])
+            ll = cell_log_marginal(C, m, grid)
+            groups = ll.sum(axis=tuple(range(ll.ndim - 1)), keepdims=True) if j == L - 1 else \
+                ll.sum(axis=order[j], keepdims=True)  # one likelihood per parent cell
+            G = max(1, int(((groups != 0).any(axis=-1)).sum()))  # parents whose children show moves
+            lp = groups + ll.reshape(-1, len(grid)).sum(axis=0) / G + strength_log_prior(grid)
+            post = np.exp(lp - lp.max(axis=-1, keepdims=True))
+            posts[j] = post / post.sum(axis=-1, keepdims=True)
+            alphas[j] = grid[np.argmax(lp, axis=-1)].reshape(gshape)
         else:
-            alphas[j] = float(strength)
-        theta = np.where(A, (C + alphas[j] * m) / (C.sum(axis=-1, keepdims=True) + alphas[j]), 0.0)
+            alphas[j] = np.full(gshape, float(strength))
+        al = alphas[j][..., None]
+        theta = np.where(A, (C + al * m) / (C.sum(axis=-1, keepdims=True) + al), 0.0)
         theta = _normalise(theta, Af)
         priors[j] = m
     table = theta
@@ -272,8 +305,14 @@ def posterior(counts: np.ndarray, allowed: np.ndarray, strength: float | str = "
     if n_draws:
         rng = rng or np.random.default_rng(0)
         D = int(n_draws)
-        a = [rng.choice(grid, size=D, p=posts[j]) if posts[j] is not None else np.full(D, alphas[j])
-             for j in range(L)]
+        a = []
+        for j in range(L):
+            if posts[j] is None:
+                a.append(np.broadcast_to(alphas[j], (D,) + alphas[j].shape))
+                continue
+            cdf = np.cumsum(posts[j], axis=-1)
+            u = rng.random((D,) + alphas[j].shape + (1,))
+            a.append(grid[np.minimum((u > cdf).sum(axis=-1), len(grid) - 1)])
         eff = _effective_counts(levels, order, a)
         th = None
         for j in reversed(range(L)):
@@ -281,16 +320,17 @@ def posterior(counts: np.ndarray, allowed: np.ndarray, strength: float | str = "
             Af = A.astype(np.float64)
             m = np.broadcast_to(_normalise(Af, Af), (D,) + C.shape) if th is None \
                 else _normalise(np.where(A, th, 0.0), np.broadcast_to(Af, (D,) + C.shape))
-            conc = eff[j] + a[j].reshape((-1,) + (1,) * C.ndim) * m
+            conc = eff[j] + a[j][..., None] * m
             g = np.where(conc > 0, rng.standard_gamma(np.where(conc > 0, conc, 1.0)), 0.0)
             # a row whose gammas all underflow (tiny concentrations) falls back to its prior mean
             th = _normalise(g, m)
         draws = th
-    ranges = tuple(None if w is None else (float(grid[np.searchsorted(np.cumsum(w), 0.05)]),
-                                           float(grid[min(len(grid) - 1, np.searchsorted(np.cumsum(w), 0.95))]))
-                   for w in posts)
-    return FactorFit(axis=axis, table=table, counts=counts, prior=priors[0], strength=alphas[0], draws=draws,
-                     pooling=order, strengths=tuple(alphas), strength_ranges=ranges)
+    typical = [float(np.median(x)) for x in alphas]
+    ranges = tuple(None if w is None else (float(np.quantile(x, 0.05)), float(np.quantile(x, 0.95)))
+                   for x, w in zip(alphas, posts))
+    return FactorFit(axis=axis, table=table, counts=counts, prior=priors[0], strength=typical[0], draws=draws,
+                     pooling=order, strengths=tuple(typical), strength_ranges=ranges,
+                     cell_strength=np.broadcast_to(alphas[0], counts.shape[:-1]))
 
 
 def forbidden_counts(counts: np.ndarray, allowed: np.ndarray) -> tuple[np.ndarray, int]:

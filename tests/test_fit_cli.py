@@ -63,3 +63,20 @@ def test_fit_refuses_fewer_draws_than_a_90_percent_interval_needs(tmp_path, caps
     assert main(["simulate", SPEC, "--accounts", "300", "--periods", "4", "--population-sample", "50",
                  "-o", str(panel)]) == 1  # the mini spec has no propensity band to survey
     assert "--population-sample" in capsys.readouterr().err
+
+
+def test_report_shows_acquisition_at_both_ends_of_the_size_range(tmp_path):
+    panel = tmp_path / "panel.parquet"
+    assert main(["simulate", SPEC, "--accounts", "3000", "--periods", "12", "--seed", "3", "-o", str(panel)]) == 0
+    model = tmp_path / "model"
+    assert main(["fit", SPEC, "--panel", str(panel), "--markets", str(tmp_path / "panel.markets.csv"), "-o", str(model),
+                 "--draws", "20", "--quiet"]) == 0
+    assert main(["report", str(model), "-o", str(tmp_path / "report")]) == 0
+    data = json.loads((tmp_path / "report" / "report.json").read_text())
+    assert data["acquisition"]["size_range"]
+    for r in data["acquisition"]["rows"]:
+        # more never-members at risk (the high size) make each less likely to join: a prospect is
+        # worth less, so acquiring one is worth more; the low size the other way round
+        assert r["honest_low_size"] < r["honest"] < r["honest_high_size"], r
+    page = (tmp_path / "report" / "report.html").read_text()
+    assert "at the high .. low market size" in page and "raw join rate" in page
