@@ -19,7 +19,7 @@ LEVEL = 0.9
 
 @pytest.mark.slow
 def test_fitted_intervals_cover_the_example_truth():
-    res = run(repeats=5, accounts=20000, periods=24, draws=100, level=LEVEL, seed0=1000, log=lambda s: None)
+    res = run(repeats=4, accounts=20000, periods=24, draws=100, level=LEVEL, seed0=1000, log=lambda s: None)
     classes = res["classes"]
     assert set(classes) == {"acquisition", "upgrade", "member_value", "lift"}
     hits = sum(c["coverage"] * c["figures"] for c in classes.values())

@@ -88,7 +88,7 @@ def test_list_and_describe_models(served, client):
     assert {s.name: s.unit for s in d.reward_streams} == {"revenue": "EUR", "member_months": "member-months"}
     assert d.currency == "EUR" and d.state_count == 240 and d.content_hash.startswith(d.version)
     assert 0.99 < d.discounting.beta < 1 and d.discounting.period == "month"
-    assert d.solve_statistics.status == "converged" and d.solve_statistics.draw_count == 6
+    assert d.solve_statistics.status == "converged" and d.solve_statistics.draw_count == 20
     pinned = client.get_model(f"models/{MODEL}", served["a"])
     assert pinned.version == served["a"] and not pinned.default_version
 
