@@ -81,7 +81,8 @@ def summary_text(diag: dict) -> str:
              "given axes in the order shown, chosen by marginal likelihood; each parent cell has its own alpha):")
     for p in diag["prior"]:
         L.append(f"  {p['factor']}: alpha {p['strength']:.3g}, {p['cells_with_moves']}/{p['cells']} cells with moves, "
-                 f"{p['prior_dominated']} cells prior-dominated ({100 * p['share_prior_dominated']:.2f} % of moves)")
+                 f"{p['prior_dominated']} cells prior-dominated, i.e. mostly their parent's (fewer moves than "
+                 f"alpha; {100 * p['share_prior_dominated']:.2f} % of moves)")
         if p.get("pooling"):
             rng = p.get("strength_ranges_by_level") or [None] * len(p["strengths_by_level"])
             lv = ", ".join(f"{a} {s:.3g}" + (f" ({r[0]:.3g}..{r[1]:.3g})" if r and r[0] != r[1] else "")
