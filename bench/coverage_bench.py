@@ -91,17 +91,17 @@ def answer(valuer, fig: Figure, level: float) -> tuple[float, tuple[float, float
 
 
 def lift(valuer, level: float) -> tuple[float, tuple[float, float] | None]:
+    """The README's ``stateworth change``: +0.03 on light -> regular for members, weighted over
+    the members in the model's own long-run mix (as ``--cohort status=solo,duo,studio``)."""
     from stateworth.valuation import TransitionChange
 
     grid = valuer.model.grid
-    spec = valuer.model.spec
     status = grid.codes()[grid.position("status")]
     members = np.isin(status, [grid.level_index("status", p) for p in MEMBERS["status"]])
     pi = np.asarray(valuer.stationary(), dtype=np.float64)
     pi = np.where(pi > 1e-12 * float(pi.max()), pi, 0.0)
     w = np.where(members, pi, 0.0)
     w /= w.sum()
-    del spec
     res = valuer.transition_change(TransitionChange("engagement", "regular", 0.03, LIFT_WHEN), stream="margin",
                                    weights=w, level=level)
     return float(res.weighted), res.interval

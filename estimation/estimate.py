@@ -186,13 +186,6 @@ def strength_log_prior(grid: np.ndarray) -> np.ndarray:
     return -0.5 * np.log(grid)
 
 
-def empirical_bayes_strength(counts: np.ndarray, m: np.ndarray, grid: np.ndarray = STRENGTH_GRID) -> float:
-    """The prior strength on ``grid`` with the largest marginal likelihood."""
-    if counts.sum() == 0:
-        return float(grid[len(grid) // 2])
-    return float(grid[int(np.argmax(log_marginal(counts, m, grid)))])
-
-
 def sibling_mean(counts: np.ndarray, allowed: np.ndarray, axis: int) -> np.ndarray:
     """Prior mean of each cell from its siblings along ``axis`` (their pooled moves without the
     cell's own, completed where allowed moves differ (:func:`pool_counts`), restricted to the
@@ -233,11 +226,6 @@ def _levels(counts: np.ndarray, allowed: np.ndarray, order: tuple[int, ...]) -> 
         C, A, _ = pool_counts(*out[-1], i)
         out.append((C, A))
     return out
-
-
-def _grid_posterior(ll: np.ndarray) -> np.ndarray:
-    w = np.exp(ll - ll.max())
-    return w / w.sum()
 
 
 def _effective_counts(levels: list[tuple[np.ndarray, np.ndarray]], order: tuple[int, ...],

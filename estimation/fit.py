@@ -48,8 +48,8 @@ ENGINES = ("duckdb", "spark")
 
 @dataclass(frozen=True)
 class FitOptions:
-    """``strength``: prior strength alpha (pseudo-moves) or ``"auto"`` (empirical Bayes per
-    factor); ``forbidden``: a move the rules forbid is an ``"error"`` or is ``"drop"``-ped with a
+    """``strength``: prior strength alpha (pseudo-moves, every level) or ``"auto"`` (each
+    parent cell's from its marginal likelihood, :mod:`.estimate`); ``forbidden``: a move the rules forbid is an ``"error"`` or is ``"drop"``-ped with a
     count; ``gaps``: a gap in an account's history is an ``"error"`` or a ``"non_member"``
     period; ``draws``: posterior draws of every table (0 = none); ``seed`` for the draws;
     ``engine``: where the counting query runs, the embedded DuckDB (default) or Spark SQL

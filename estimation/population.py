@@ -143,13 +143,3 @@ def _numbers(raw: np.ndarray) -> np.ndarray:
         except (TypeError, ValueError):
             pass
     return out
-
-
-def never_members_by_band(spec, sample: PopulationSample, sizes: np.ndarray, tracked: np.ndarray,
-                          shares: np.ndarray | None = None) -> np.ndarray:
-    """``(M, B, T)`` never-members at the end of each period: size x share - tracked, where
-    ``sizes`` is ``(M, T)`` and ``tracked`` ``(M, B, T)`` (accounts first seen by the end of t by
-    their band at the first row). ``shares`` defaults to the sample's."""
-    M, B, _ = tracked.shape
-    s = sample.shares(M, B) if shares is None else shares
-    return sizes[:, None, :] * s[:, :, None] - tracked

@@ -10,8 +10,7 @@ import pytest
 
 from stateworth.errors import PanelError
 from stateworth.rules import load_spec
-from stateworth.estimation.estimate import (empirical_bayes_strength, pool_counts, pooling_order, posterior,
-                                            sibling_mean, wilson_interval)
+from stateworth.estimation.estimate import pool_counts, pooling_order, posterior, wilson_interval
 from stateworth.estimation.diagnostics import summary_text
 from stateworth.estimation.fit import FitOptions, fit_panel
 from stateworth.estimation.simulate import simulate_panel, write_simulation
@@ -99,8 +98,8 @@ def test_empirical_bayes_pools_alike_cells_and_separates_different_ones():
     allowed = np.ones((20, 2), dtype=bool)
     alike = np.stack([rng.multinomial(200, [0.3, 0.7]) for _ in range(20)]).astype(float)
     diff = np.stack([rng.multinomial(200, [p, 1 - p]) for p in np.linspace(0.05, 0.95, 20)]).astype(float)
-    a1 = empirical_bayes_strength(alike, sibling_mean(alike, allowed, 0))
-    a2 = empirical_bayes_strength(diff, sibling_mean(diff, allowed, 0))
+    a1 = posterior(alike, allowed).strength
+    a2 = posterior(diff, allowed).strength
     assert a1 > 100 * a2
 
 

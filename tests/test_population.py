@@ -129,12 +129,6 @@ def test_acquisition_by_band_recovered_with_population_and_missed_without(spec, 
     assert "does not depend on the propensity band" in summary_text(without.diagnostics)
 
 
-def _bad(tmp_path, df: pd.DataFrame, name: str = "bad.csv") -> str:
-    path = tmp_path / name
-    df.to_csv(path, index=False)
-    return str(path)
-
-
 @pytest.mark.parametrize("case", ["missing", "market", "unsized", "negative", "nan", "text", "few", "shares"])
 def test_bad_population_is_one_line_naming_file_row_or_column(files, tmp_path, capsys, case):
     sim, p, m, pop, d = files

@@ -8,8 +8,10 @@ NAME = "fit"
 HELP = "estimate the factor tables from an account panel and write the compiled model"
 DESCRIPTION = """Estimate every factor table of a spec from an account panel (CSV or Parquet) and a
 market-size table, and write the compiled model artifact to MODEL_DIR with diagnostics.json (and a
-readable diagnostics.txt) inside. Probabilities are Dirichlet posterior means shrunk towards the
-parent cell; never-member join rates come from first joins and the market sizes; a propensity
+readable diagnostics.txt) inside. Probabilities are hierarchical Dirichlet posterior means: each
+cell shrunk towards its parent, the parents pooling the given axes in the order the data favour
+(marginal likelihood), with posterior draws that carry the doubt about how hard to pool;
+never-member join rates come from first joins and the market sizes (printed raw and as used); a propensity
 band axis is fitted from its covariates. With --population (a sample of the addressable population:
 market, the band's covariates, optional weight) never-members are placed in propensity bands and
 their join hazard is estimated per market and band; without it, per-band acquisition values assume
@@ -31,7 +33,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                         "covariates, optional weight): places never-members in bands for a join hazard by band")
     p.add_argument("-o", "--output", required=True, help="model directory to write")
     p.add_argument("--strength", default="auto",
-                   help="prior strength in pseudo-moves per cell, or auto (empirical Bayes; default)")
+                   help="prior strength in pseudo-moves per cell at every level of pooling, or auto (each "
+                        "parent cell's from the marginal likelihood; default)")
     p.add_argument("--drop-forbidden", action="store_true",
                    help="drop moves the spec's rules forbid (counted in the diagnostics) instead of failing")
     p.add_argument("--gaps", default="error", choices=["error", "non_member"],
