@@ -55,7 +55,7 @@ def stamp_lines(data: Mapping[str, Any]) -> list[str]:
     m = data["model"]
     if m["draws"]:
         iv = f"{data['level']:.0%} intervals over {m['draws']} posterior draws"
-        if data.get("interval_note"):  # "unreliable: 5 posterior draws, fewer than the 20 ..."
+        if data.get("interval_note"):  # "no intervals: 5 posterior draws, fewer than the 20 ..."
             iv = f"{data['level']:.0%} intervals, {data['interval_note'].split(';')[0]}"
     else:
         iv = "no intervals (the model has no posterior draws)"

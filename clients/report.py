@@ -71,7 +71,7 @@ def clean(doc: Any) -> Any:
 
 def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | None = None,
             top: int = 12, level: float = 0.9, progress: bool = False,
-            extra: Mapping[str, Any] | None = None) -> dict[str, Any]:
+            extra: Mapping[str, Any] | None = None, sensitivity: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Everything the page shows, as a JSON-ready dict: the valuation layer's summary
     (:func:`~stateworth.valuation.summary.report_summary`) plus the fit diagnostics (cleaned),
     the assumptions and the cautions."""
@@ -82,9 +82,12 @@ def collect(valuer, stream: str | None = None, diagnostics: Mapping[str, Any] | 
     bar = tqdm(total=len(SECTIONS), desc="report", unit="part", disable=not progress, leave=False)
     try:
         data = report_summary(valuer.solved, stream, top=top, level=level, extra=extra,
-                              on_step=lambda _name: bar.update(1))
+                              on_step=lambda _name: bar.update(1), sensitivity=sensitivity)
     finally:
         bar.close()
+    joins = (diagnostics or {}).get("joins") if isinstance(diagnostics, Mapping) else None
+    data["acquisition"]["band_assumption"] = (joins or {}).get("band_assumption") if isinstance(joins, Mapping) \
+        else None
     data["diagnostics"] = clean(diagnostics) if diagnostics is not None else None
     data["diagnostics_summary"] = fit_summary(diagnostics)
     data["assumptions"] = ASSUMPTIONS
@@ -289,6 +292,30 @@ def draw_charts(data: Mapping[str, Any]) -> dict[str, bytes | None]:
     return out
 
 
+def size_range(valuer, model_dir: Path) -> dict[str, Any] | None:
+    """The model solved (point values) at the low and high market sizes, from the status tables
+    ``stateworth fit`` stores as ``sensitivity.size_low/high.table.<status axis>``; None when the
+    model holds none."""
+    from stateworth.rules import load_model
+    from stateworth.valuation.solved import solve_model
+
+    if not Path(model_dir).is_dir():
+        return None
+    model = valuer.model
+    _, extra = load_model(model_dir)
+    st = model.spec.status_axis
+    keys = {k: f"sensitivity.size_{k}.table.{st}" for k in ("low", "high")}
+    if not all(v in extra for v in keys.values()):
+        return None
+    out = {}
+    for k, v in keys.items():
+        s = solve_model(model.with_tables({st: extra[v]}), draws=False, longrun=False, reach=False,
+                        streams=valuer.streams)
+        s.reachable = valuer.solved.reachable  # the same rules: the same reachable states
+        out[k] = s
+    return out
+
+
 def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | None = None,
                  valuer=None, top: int = 12, level: float = 0.9, progress: bool = False,
                  backtest: str | Path | None = None, extra: Mapping[str, Any] | None = None) -> Path:
@@ -324,6 +351,7 @@ def build_report(model_dir: str | Path, out_dir: str | Path, *, stream: str | No
             raise ArtifactError(f"diagnostics.json is not valid JSON ({e}); refit or remove it",
                                 where=str(model_dir)) from None
     data = collect(valuer, stream=stream, diagnostics=diagnostics, top=top, level=level, progress=progress,
+                   sensitivity=size_range(valuer, model_dir),
                    extra=extra)
     charts = draw_charts(data)
     page = render_html(data, charts)

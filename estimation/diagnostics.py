@@ -64,6 +64,8 @@ def prior_report(spec, factor: Factor, fit: FactorFit, skip: np.ndarray | None =
     listed = [{"cell": _cell_name(spec, factor, tuple(i)), "moves": int(n[tuple(i)])}
               for i in np.argwhere(dom & (n > 0))[:MAX_LISTED]]
     return {"factor": factor.axis, "strength": fit.strength, "cells": int(n.size),
+            "pooling": [factor.given[i] for i in fit.pooling], "strengths_by_level": list(fit.strengths),
+            "strength_ranges_by_level": [None if r is None else list(r) for r in fit.strength_ranges],
             "cells_with_moves": int((n > 0).sum()), "prior_dominated": int(dom.sum()),
             "share_prior_dominated": float(n[dom].sum() / total) if total else 0.0,
             "listed_with_some_moves": listed}
@@ -79,17 +81,40 @@ def summary_text(diag: dict) -> str:
         L.append(f"  {diag['panel']['gap_rows_filled']:,} gap {period}s filled as former-member periods")
     if diag.get("forbidden_dropped"):
         L.append(f"  {diag['forbidden_dropped']:,} moves the spec forbids were dropped (--drop-forbidden)")
-    L.append("factors (prior strength alpha = pseudo-moves pulling a cell towards its parent):")
+    L.append("factors (prior strength alpha = pseudo-moves pulling a cell towards its parent; parents pool the "
+             "given axes in the order shown, chosen by marginal likelihood; each parent cell has its own alpha):")
     for p in diag["prior"]:
         L.append(f"  {p['factor']}: alpha {p['strength']:.3g}, {p['cells_with_moves']}/{p['cells']} cells with moves, "
-                 f"{p['prior_dominated']} cells prior-dominated ({100 * p['share_prior_dominated']:.2f} % of moves)")
+                 f"{p['prior_dominated']} cells prior-dominated, i.e. mostly their parent's (fewer moves than "
+                 f"alpha; {100 * p['share_prior_dominated']:.2f} % of moves)")
+        if p.get("pooling"):
+            rng = p.get("strength_ranges_by_level") or [None] * len(p["strengths_by_level"])
+            lv = ", ".join(f"{a} {s:.3g}" + (f" ({r[0]:.3g}..{r[1]:.3g})" if r and r[0] != r[1] else "")
+                           for a, s, r in zip(p["pooling"], p["strengths_by_level"], rng))
+            L.append(f"    pooled over, in order (median alpha of the parent cells, 5..95 % over them): {lv}; "
+                     f"then the even spread {p['strengths_by_level'][-1]:.3g}")
     o = diag["overlap"]
     L.append(f"overlap: {o['cells_failing']} status cells lack moves into a member or a non-member status "
              f"({100 * o['share_failing']:.2f} % of moves); {o['cells_without_moves']} cells have no moves at all")
-    L.append(f"never-member join hazard per {period} at the market size (in brackets: at the high .. low size):")
-    for m, h in diag["joins"]["hazard"].items():
-        lo, hi = diag["joins"]["hazard_high_size"][m], diag["joins"]["hazard_low_size"][m]
-        L.append(f"  {m}: {h:.5f} ({lo:.5f}..{hi:.5f})")
+    j = diag["joins"]
+    pooled = ", ".join(f"{a} {s:.3g}" for a, s in zip(j.get("pooling", []), j.get("strengths", [])))
+    L.append(f"never-member join hazard per {period}: raw = first joins / never-members at risk; used = what the model "
+             "uses, shrunk towards the pooled rate" + (f" (alpha by pooled axis: {pooled})" if pooled else "")
+             + "; in brackets: used at the high .. low size")
+    for m, h in j["hazard"].items():
+        lo, hi = j["hazard_high_size"][m], j["hazard_low_size"][m]
+        raw = (j.get("hazard_raw") or {}).get(m)
+        L.append(f"  {m}: raw {raw:.5f}, used {h:.5f} ({lo:.5f}..{hi:.5f})" if raw is not None
+                 else f"  {m}: {h:.5f} ({lo:.5f}..{hi:.5f})")
+    if j.get("by_band"):
+        bb = j["by_band"]
+        L.append(f"  by band, never-members placed by the population sample {bb['population']} ({bb['rows']:,} rows): "
+                 "market band: share of the addressable population, raw, used")
+        for m, row in bb["hazard"].items():
+            L.append("    " + m + ": " + "; ".join(f"{b} {bb['shares'][m][b]:.3f}, {bb['hazard_raw'][m][b]:.5f}, {h:.5f}"
+                                                 for b, h in row.items()))
+    if j.get("band_assumption"):
+        L.append(f"  NOTE: {j['band_assumption']}")
     if diag.get("propensity"):
         pr = diag["propensity"]
         L.append(f"propensity band '{pr['axis']}': logistic on {', '.join(pr['covariates'])} "

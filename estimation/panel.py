@@ -459,6 +459,7 @@ class MarketSizes:
     low: np.ndarray
     high: np.ndarray
     by_period: bool
+    listed: np.ndarray | None = None  # (M,) bool: the market has a row in the table
 
 
 def load_markets(spec: Spec, path: str | Path | TableSource, panel: Panel) -> MarketSizes:
@@ -564,7 +565,7 @@ def market_problems(spec: Spec, path: str | TableSource, panel: Panel) -> list[t
     if probs:
         return probs
     fill = lambda a: np.where(np.isnan(a), 0.0, a)  # noqa: E731 - markets absent from the panel
-    return MarketSizes(lay.market, fill(size), fill(low), fill(high), by_period)
+    return MarketSizes(lay.market, fill(size), fill(low), fill(high), by_period, ~np.isnan(size).all(axis=1))
 
 
 def check_panel(spec: Spec, panel_path: str | TableSource, markets_path: str | TableSource | None, *,

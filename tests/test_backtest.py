@@ -142,8 +142,8 @@ def test_until_fits_the_calibration_periods_as_a_truncated_panel(spec, tmp_path)
     cut = sorted(df["period"].astype(str).unique())[6]
     write_table(pa.Table.from_pandas(df[df["period"].astype(str) <= cut], preserve_index=False), tmp_path / "cut.parquet")
     p_cut = 12 * int(cut[:4]) + int(cut[5:]) - 1
-    a = fit_panel(spec, panel, markets, FitOptions(draws=3, until=p_cut))
-    b = fit_panel(spec, tmp_path / "cut.parquet", markets, FitOptions(draws=3))
+    a = fit_panel(spec, panel, markets, FitOptions(draws=0, until=p_cut))
+    b = fit_panel(spec, tmp_path / "cut.parquet", markets, FitOptions(draws=0))
     assert a.model.hash == b.model.hash
     assert a.model.metadata["fitted_from"]["periods"][1] == cut
 
@@ -261,11 +261,11 @@ def test_command_writes_json_and_page_and_the_report_shows_it(small_panel, tmp_p
     assert "not accounting figures" in page and "account_" not in page
     # the same output directory may be rewritten; an unrelated one is refused
     assert main(["backtest", SPEC_PATH, "--panel", str(panel), "--markets", str(markets), "--holdout", "3",
-                 "--draws", "5", "--replicates", "20", "-o", str(out), "--quiet"]) == 0
+                 "--draws", "20", "--replicates", "20", "-o", str(out), "--quiet"]) == 0
     capsys.readouterr()
     model = tmp_path / "model"
     assert main(["fit", SPEC_PATH, "--panel", str(panel), "--markets", str(markets), "-o", str(model),
-                 "--draws", "5", "--quiet"]) == 0
+                 "--draws", "20", "--quiet"]) == 0
     rep = tmp_path / "report"
     assert main(["report", str(model), "-o", str(rep), "--backtest", str(out / "backtest.json")]) == 0
     html = (rep / "report.html").read_text()
@@ -323,7 +323,7 @@ def test_gap_months_at_the_cut_off_are_spread_like_known_accounts(spec, small_pa
     holes = df[~((per == cut) & df["account"].isin(drop))]
     write_table(pa.Table.from_pandas(holes, preserve_index=False), tmp_path / "gaps.parquet")
     res = backtest(spec, tmp_path / "gaps.parquet", markets,
-                   BacktestOptions(holdout=3, replicates=40, fit=FitOptions(draws=10, gaps="non_member")))
+                   BacktestOptions(holdout=3, replicates=40, fit=FitOptions(draws=20, gaps="non_member")))
     assert res["start"]["imputed"] == len(drop) > 0
     assert any("unknown levels" in n for n in res["notes"])
 
@@ -335,7 +335,7 @@ def test_operator_path_and_replicate_chunks_give_the_same_expected_figures(spec,
     import stateworth.estimation.flows as flows
 
     panel, markets = small_panel
-    opts = BacktestOptions(holdout=3, replicates=40, fit=FitOptions(draws=10))
+    opts = BacktestOptions(holdout=3, replicates=40, fit=FitOptions(draws=20))
     a = backtest(spec, panel, markets, opts)
     monkeypatch.setattr(flows, "CSR_MAX_STATES", 0)
     monkeypatch.setattr(bt, "CHUNK_ROWS", 300)

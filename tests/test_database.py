@@ -89,7 +89,7 @@ def pgpassword(pg, monkeypatch):
 
 def _fit(tmp_path, name, *args) -> tuple[int, Path]:
     out = tmp_path / name
-    return main(["fit", SPEC, *args, "-o", str(out), "--draws", "5", "--quiet"]), out
+    return main(["fit", SPEC, *args, "-o", str(out), "--draws", "20", "--quiet"]), out
 
 
 def test_fit_from_database_equals_parquet(pgpassword, tmp_path, capsys, monkeypatch):

@@ -31,8 +31,9 @@ MEMBER = dict(STATE, status="solo", tenure="2", engagement="light")
 @pytest.fixture(scope="module")
 def served(tmp_path_factory):
     d = tmp_path_factory.mktemp("models")
-    va = write_artifact(d, "tiny-a", seed=0, draws=6)
-    vb = write_artifact(d, "tiny-b", seed=1, draws=6)  # written last: the default version
+    # 20 draws: the fewest a 90 % interval may use (2 / (1 - 0.9); valuation.answer.draws_needed)
+    va = write_artifact(d, "tiny-a", seed=0, draws=20)
+    vb = write_artifact(d, "tiny-b", seed=1, draws=20)  # written last: the default version
     srv = ServerProcess(d, "--metrics-port", "0", "--max-batch", "5000")
     yield {"server": srv, "dir": d, "a": va, "b": vb}
     rc = srv.stop()
@@ -50,7 +51,7 @@ def reference():
     """The default version's point Valuer, built here (same tables as the server's; draws are
     left out to keep the test quick, intervals are checked for shape and order only)."""
     from stateworth.valuation import Valuer
-    return Valuer.build(compile_tiny(1, draws=6), draws=False)
+    return Valuer.build(compile_tiny(1, draws=20), draws=False)
 
 
 def _columns(states: list[dict]) -> dict[str, list[str]]:
@@ -87,7 +88,7 @@ def test_list_and_describe_models(served, client):
     assert {s.name: s.unit for s in d.reward_streams} == {"revenue": "EUR", "member_months": "member-months"}
     assert d.currency == "EUR" and d.state_count == 240 and d.content_hash.startswith(d.version)
     assert 0.99 < d.discounting.beta < 1 and d.discounting.period == "month"
-    assert d.solve_statistics.status == "converged" and d.solve_statistics.draw_count == 6
+    assert d.solve_statistics.status == "converged" and d.solve_statistics.draw_count == 20
     pinned = client.get_model(f"models/{MODEL}", served["a"])
     assert pinned.version == served["a"] and not pinned.default_version
 

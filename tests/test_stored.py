@@ -27,7 +27,7 @@ from test_valuation import PROSPECT, dirichlet_draws, tiny_spec, tiny_tables
 def model():
     spec = tiny_spec(markets=2, tenure=3)
     t = tiny_tables(spec, seed=4)
-    return compile_model(spec, t, draws=dirichlet_draws(t, 8, seed=3), source="stored-test")
+    return compile_model(spec, t, draws=dirichlet_draws(t, 20, seed=3), source="stored-test")
 
 
 @pytest.fixture()
@@ -42,8 +42,8 @@ def test_solved_values_match_scipy_per_draw(model):
     # computed at test time); the point model's long-run mix against the left eigenvector for 1
     # of each fixed block (numpy.linalg.eig).
     s = solve_model(model)
-    assert s.stats["draws"]["method"] == "sparse" and s.draws.shape == (8, model.n_states, 2)
-    for d in (0, 7):
+    assert s.stats["draws"]["method"] == "sparse" and s.draws.shape == (20, model.n_states, 2)
+    for d in (0, 19):
         md = model.with_tables({a: model.draws[a][d] for a in model.draws})
         A = (sp.identity(md.n_states) - md.beta * md.csr()).tocsc()
         ref = sla.spsolve(A, np.stack([md.rewards[k] for k in s.streams], axis=1))

@@ -249,10 +249,16 @@ def test_few_draws_carry_the_interval_note():
     valuer = Valuer.build(tiny_model(draws=5))
     out = sm.report_summary(valuer.solved, "revenue", top=3)
     prospect = {"market": "harbor", "tenure": "0", "status": "prospect", "engagement": "none"}
-    note = valuer.acquisition(prospect, "solo", "revenue").details["interval_note"]
-    assert out["interval_note"] == note and "5 posterior draws" in note
+    # a query refuses the level (one line naming the field); the page shows its figures without
+    # intervals and says why
+    with pytest.raises(QueryError, match="at least 20 posterior draws") as e:
+        valuer.acquisition(prospect, "solo", "revenue")
+    assert e.value.field == "level"
+    note = out["interval_note"]
+    assert note.startswith("no intervals: 5 posterior draws")
     for name in ("value_by_tenure", "acquisition", "plan_upgrade", "marginal"):
         assert out[name]["interval_note"] == note
+    assert all(r.get("interval") is None for r in out["acquisition"]["rows"])
 
 
 def test_bad_arguments_and_the_extra_section_slot(season):

@@ -15,10 +15,9 @@ import numpy as np
 from stateworth.caution import CAUTION
 from stateworth.errors import QueryError
 from stateworth.rules.rewards import period_cash
-from stateworth.valuation import lookups
 from stateworth.valuation import states as st
 from stateworth.valuation.answer import Answer
-from stateworth.valuation.lookups import Coords, answer, coords, index, values
+from stateworth.valuation.lookups import Coords, answer, coords, draws_needed, index, values
 from stateworth.valuation.solved import Solved
 
 
@@ -61,15 +60,19 @@ def acquisition(solved: Solved, state: Coords, plan: str, stream: str = "revenue
     most likely state. QueryError if the state is a member, ``plan`` is not a plan, is not sold
     there, or the move rules forbid joining it from this status. (For one chosen after-state use
     :func:`contrast`.)"""
-    spec = solved.model.spec
     c = coords(solved, index(solved, state))
+    _check_acquisition(solved, c, plan)
+    return landing_contrast(solved, c, plan, stream, horizon, level, kind="acquisition")
+
+
+def _check_acquisition(solved: Solved, c: dict[str, str], plan: str) -> None:
+    spec = solved.model.spec
     if c[spec.status_axis] in spec.members:
         raise QueryError(f"an acquisition starts from a non-member state; {spec.status_axis}={c[spec.status_axis]} "
                          f"is a plan (non-member levels: {', '.join(spec.non_members)})", field=spec.status_axis)
     check_plan(solved, plan)
     st.check_sold(spec, c, plan)
     st.check_move(spec, c[spec.status_axis], plan)
-    return landing_contrast(solved, c, plan, stream, horizon, level, kind="acquisition")
 
 
 def plan_change(solved: Solved, state: Coords, to_plan: str, stream: str = "revenue", horizon: int | None = None,
@@ -123,12 +126,24 @@ def engagement_change(solved: Solved, state: Coords, axis: str, to_level: str, s
     return contrast(solved, c, after, stream, horizon, level, kind="engagement_change")
 
 
-def naive_comparison(solved: Solved, state: Coords, plan: str, stream: str = "revenue") -> dict[str, Any]:
+def naive_comparison(solved: Solved, state: Coords, plan: str, stream: str = "revenue",
+                     level: float | None = 0.9) -> dict[str, Any]:
     """The shortcut figures beside the honest one, for a non-member state and a plan:
     ``member_value`` V(s+) (the usual lifetime-value shortcut; s+ the landing mix), ``honest``
     V(s+) - V(s), ``one_period`` the stream's cash in one member period at s+, ``gap_ratio`` member_value /
-    honest, plus unit, version and a caution."""
-    acq = acquisition(solved, state, plan, stream)
+    honest, plus unit, version and a caution. ``honest_interval`` at ``level`` when the model has
+    enough draws for it (None with ``level=None``)."""
+    enough = level is not None and (solved.draws is None or solved.n_draws >= draws_needed(level))
+    if enough:
+        acq = acquisition(solved, state, plan, stream, level=level)
+    else:  # the checks of an acquisition, then its figures without an interval
+        c = coords(solved, index(solved, state))
+        _check_acquisition(solved, c, plan)
+        va, vb, _, dst0, w0 = landing_samples(solved, index(solved, c), plan, stream)
+        acq = Answer(kind="acquisition", value=va - vb, unit=solved.unit(stream), version=solved.version,
+                     stream=stream, interval=None, level=0.9,
+                     details={"before": c, "after": coords(solved, int(dst0[np.argmax(w0)])), "before_value": vb,
+                              "after_value": va})
     spec = solved.model.spec
     dst, w, _ = landing(solved, index(solved, state), plan)
     one = float(np.dot(w, period_cash(spec, solved.model.grid,
@@ -258,9 +273,6 @@ def landing_contrast(solved: Solved, state: Coords, plan: str, stream: str, hori
     if per is not None:
         lo, hi = percentile_interval(per, level)
         interval = (float(lo), float(hi))
-        note = lookups.interval_note(solved, level)
-        if note:
-            details["interval_note"] = note
     return Answer(kind=kind, value=v_after - v_before, unit=solved.unit(stream), version=solved.version,
                   stream=stream, interval=interval, level=level, horizon=None if horizon is None else int(horizon),
                   details=details)

@@ -18,9 +18,6 @@ from stateworth.valuation.answer import Answer, percentile_interval
 from stateworth.valuation.solved import Solved
 
 Coords = Mapping[str, "str | int"]
-#: fewer posterior draws than this make a 90 % percentile interval unreliable: each tail then
-#: rests on fewer than one draw (at a level L the tails hold (1 - L) / 2 of the draws)
-MIN_TAIL_DRAWS = 1.0
 
 
 def check_level(level: Any) -> float:
@@ -41,12 +38,13 @@ def draws_needed(level: float) -> int:
 
 
 def interval_note(solved: Solved, level: float) -> str | None:
-    """Why a percentile interval at ``level`` over the model's draws is unreliable (fewer draws than
-    :func:`draws_needed`), or None when it is not or the model has no draws."""
+    """Why there is no percentile interval at ``level`` although the model has draws (fewer than
+    :func:`draws_needed`: queries refuse such a level, a page of figures shows them without
+    intervals and says why), or None."""
     need = draws_needed(level)
     if solved.draws is None or solved.n_draws >= need:
         return None
-    return (f"unreliable: {solved.n_draws} posterior draws, fewer than the {need} a {level:.0%} interval needs; "
+    return (f"no intervals: {solved.n_draws} posterior draws, fewer than the {need} a {level:.0%} interval needs; "
             f"fit with --draws {need} or more")
 
 
@@ -139,8 +137,7 @@ def draw_values(solved: Solved, s: Any, stream: str, horizon: int | None = None)
 def answer(solved: Solved, kind: str, parts: Sequence[tuple[np.ndarray, np.ndarray]], stream: str,
            horizon: int | None, level: float, details: dict) -> Answer:
     """``sum over (states, weights) in parts of w . V(states)``, with the same sum per draw for the
-    interval. With fewer draws than :func:`draws_needed` says for ``level``, the interval is
-    given but ``details["interval_note"]`` says it is unreliable."""
+    interval (a level that needs more draws than the model has is refused: :func:`draws_needed`)."""
     level = check_level(level)
     val = sum(float(np.dot(w, values(solved, s, stream, horizon))) for s, w in parts)
     interval = None
@@ -148,9 +145,6 @@ def answer(solved: Solved, kind: str, parts: Sequence[tuple[np.ndarray, np.ndarr
         d = sum(draw_values(solved, s, stream, horizon) @ w for s, w in parts)
         lo, hi = percentile_interval(d, level)
         interval = (float(lo), float(hi))
-        note = interval_note(solved, level)
-        if note:
-            details = {**details, "interval_note": note}
     return Answer(kind=kind, value=val, unit=solved.unit(stream), version=solved.version, stream=stream,
                   interval=interval, level=level, horizon=None if horizon is None else int(horizon),
                   details=details)

@@ -169,7 +169,7 @@ def _horizon_draws(solved: Solved, h: int) -> np.ndarray:
 
 def solve_model(model, *, settings: Settings = Settings(), streams: Sequence[str] | None = None,
                 draws: bool = True, longrun: bool = True, method: str = "auto",
-                devices: int | None = None) -> Solved:
+                devices: int | None = None, reach: bool = True) -> Solved:
     """Solve ``model``: every reward stream (or ``streams``) to ``settings.tol``; with ``draws``
     and posterior draws in the model, every draw to ``settings.draw_tol`` (same method as the
     point solve, warm-started from it); with ``longrun``, the long-run mix. Raises QueryError on an
@@ -204,8 +204,10 @@ def solve_model(model, *, settings: Settings = Settings(), streams: Sequence[str
             stats["longrun"] = {"seconds": time.perf_counter() - t0}
         except QueryError as e:
             stats["longrun"] = {"seconds": time.perf_counter() - t0, "error": e.message}
-    t0 = time.perf_counter()
-    reach = reachable(model)
-    stats["reachable"] = {"seconds": time.perf_counter() - t0, "states": int(reach.sum())}
+    mask = None
+    if reach:
+        t0 = time.perf_counter()
+        mask = reachable(model)
+        stats["reachable"] = {"seconds": time.perf_counter() - t0, "states": int(mask.sum())}
     return Solved(model=model, streams=names, values=np.asarray(sol.values, dtype=np.float64), draws=dv,
-                  longrun=pi, stats=stats, settings=settings, reachable=reach)
+                  longrun=pi, stats=stats, settings=settings, reachable=mask)

@@ -40,6 +40,7 @@ which valuation does not import); :func:`report_summary` keeps them under their 
 from __future__ import annotations
 
 import itertools
+import dataclasses
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
 import numpy as np
@@ -179,7 +180,9 @@ def joinable_plans(spec) -> tuple[str, list[str]]:
 
 
 def _interval(samples: np.ndarray | None, level: float) -> list[float] | None:
-    if samples is None:
+    """The percentile interval of ``samples`` (draws along axis 0), or None without draws or with
+    fewer than the level needs (the section's ``interval_note`` then says so)."""
+    if samples is None or np.shape(samples)[0] < lookups.draws_needed(level):
         return None
     lo, hi = percentile_interval(samples, level)
     return [float(lo), float(hi)]
@@ -194,9 +197,12 @@ def _levels(grid, name: str | None) -> list[str | None]:
 
 
 def _mean_figure(solved: Solved, states: np.ndarray, weights: np.ndarray, stream: str, level: float) -> dict[str, Any]:
-    """``w . V(states)`` (``w`` normalised) with its interval, as :func:`.lookups.answer` computes it."""
-    a = lookups.answer(solved, "mean", [(states, weights / weights.sum())], stream, None, level, {})
-    return {"value": float(a.value), "interval": _iv(a.interval)}
+    """``w . V(states)`` (``w`` normalised) with its interval (the weighted sum within each draw;
+    None where the draws are too few for ``level``)."""
+    w = weights / weights.sum()
+    value = float(np.dot(w, lookups.values(solved, states, stream)))
+    d = lookups.draw_values(solved, states, stream)
+    return {"value": value, "interval": _interval(None if d is None else d @ w, level)}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -297,11 +303,16 @@ def _landing_mix(solved: Solved, pieces: Sequence[tuple[np.ndarray, np.ndarray]]
     return out
 
 
-def acquisition_by_market(solved: Solved, stream: str, level: float = 0.9) -> dict[str, Any]:
+def acquisition_by_market(solved: Solved, stream: str, level: float = 0.9,
+                          sensitivity: Mapping[str, Solved] | None = None) -> dict[str, Any]:
     """Per market and joinable plan: the acquisition value (into the landing mix) averaged with
     equal weights over the :func:`prospect_profile` states, with its interval (the average within
     each draw), the prospect's value, the naive figures (:func:`.contrasts.naive_comparison`:
-    "member value" V(after) alone and one period of the stream's cash) and the landing mix."""
+    "member value" V(after) alone and one period of the stream's cash) and the landing mix.
+    ``sensitivity``: ``{"low": Solved, "high": Solved}``, the model refitted at the ends of the
+    market-size range (point values); each row then has ``honest_low_size`` and
+    ``honest_high_size``: the market sizes are inputs, not data, so their range is a sensitivity
+    shown beside the interval, not carried into it."""
     model = solved.model
     spec, grid = model.spec, model.grid
     fax = market_axis(solved)
@@ -325,7 +336,7 @@ def acquisition_by_market(solved: Solved, stream: str, level: float = 0.9) -> di
             naive, after, before, draws, pieces = [], [], [], [], []
             for i in prof:
                 c = grid.coords(int(i))
-                naive.append(contrasts.naive_comparison(solved, c, plan, stream))
+                naive.append(contrasts.naive_comparison(solved, c, plan, stream, level=None))
                 va, vb, per, dst, w = contrasts.landing_samples(solved, int(i), plan, stream)
                 after.append(va)
                 before.append(vb)
@@ -334,7 +345,10 @@ def acquisition_by_market(solved: Solved, stream: str, level: float = 0.9) -> di
             honest = float(np.mean(after) - np.mean(before))
             member_value = float(np.mean([n["member_value"] for n in naive]))
             samples = None if draws[0] is None else np.mean(np.stack(draws), axis=0)
-            rows.append({**row, "honest": honest, "interval": _interval(samples, level),
+            sens = {f"honest_{k}_size": float(np.mean([contrasts.acquisition(sv, grid.coords(int(i)), plan, stream).value
+                                                       for i in prof]))
+                    for k, sv in (sensitivity or {}).items()}
+            rows.append({**row, **sens, "honest": honest, "interval": _interval(samples, level),
                          "prospect_value": float(np.mean(before)), "member_value": member_value,
                          "one_period": float(np.mean([n["one_period"] for n in naive])),
                          "ratio": member_value / honest if honest > 0 else None,
@@ -343,7 +357,8 @@ def acquisition_by_market(solved: Solved, stream: str, level: float = 0.9) -> di
         note = lookups.interval_note(solved, level)
     not_joinable = [p for p in spec.members if p not in joinable]
     return {"source_level": source, "profile": profile_shown, "cycles": cycle_axes(solved), "level": level,
-            "rows": rows, "not_joinable": not_joinable, "market_axis": fax, "interval_note": note}
+            "rows": rows, "not_joinable": not_joinable, "market_axis": fax, "interval_note": note,
+            "size_range": bool(sensitivity)}
 
 
 def plan_upgrades(solved: Solved, stream: str, level: float = 0.9,
@@ -491,7 +506,8 @@ def solve_facts(solved: Solved) -> dict[str, Any]:
 
 def report_summary(solved: Solved, stream: str | None = None, *, top: int = 12, level: float = 0.9,
                    extra: Mapping[str, Any] | None = None,
-                   on_step: Callable[[str], None] | None = None) -> dict[str, Any]:
+                   on_step: Callable[[str], None] | None = None,
+                   sensitivity: Mapping[str, Solved] | None = None) -> dict[str, Any]:
     """Every section of the report (see the module doc) for one stream (default the first), as one
     JSON-ready dict: ``model``, ``stream``, ``unit``, ``stream_description``, ``level``, one key per
     name in :data:`SECTIONS`, ``solve``, and one key per name in :data:`EXTRA_SECTIONS` (the value
@@ -503,12 +519,17 @@ def report_summary(solved: Solved, stream: str | None = None, *, top: int = 12, 
     if unknown:
         raise QueryError(f"unknown report section '{unknown[0]}'; extra sections are {', '.join(EXTRA_SECTIONS)}",
                          field="extra")
+    note = lookups.interval_note(solved, level)
+    facts_of = solved
+    if note is not None:
+        # fewer draws than the level needs: every figure without its interval (the note says why)
+        solved = dataclasses.replace(solved, draws=None)
     facts = stream_facts(solved, stream)
-    data: dict[str, Any] = {"model": model_facts(solved), "stream": stream, "unit": facts["unit"],
+    data: dict[str, Any] = {"model": model_facts(facts_of), "stream": stream, "unit": facts["unit"],
                             "stream_description": facts["description"], "level": level}
     steps: dict[str, Callable[[], Any]] = {
         "value_by_tenure": lambda: value_by_tenure(solved, stream, level),
-        "acquisition": lambda: acquisition_by_market(solved, stream, level),
+        "acquisition": lambda: acquisition_by_market(solved, stream, level, sensitivity),
         "plan_upgrade": lambda: plan_upgrades(solved, stream, level),
         "marginal": lambda: marginal_ranked(solved, stream, top, level),
         "long_run": lambda: long_run_figures(solved, level),
@@ -519,7 +540,10 @@ def report_summary(solved: Solved, stream: str | None = None, *, top: int = 12, 
             on_step(name)
     data["solve"] = solve_facts(solved)
     notes = {data[n].get("interval_note") for n in SECTIONS if isinstance(data[n], Mapping)} - {None}
-    data["interval_note"] = next(iter(notes)) if notes else None
+    data["interval_note"] = note or (next(iter(notes)) if notes else None)
+    for n in SECTIONS:
+        if note is not None and isinstance(data[n], dict):
+            data[n]["interval_note"] = note
     for name in EXTRA_SECTIONS:
         data[name] = (extra or {}).get(name)
     return data

@@ -10,9 +10,14 @@ NAME = "fit"
 HELP = "estimate the factor tables from an account panel and write the compiled model"
 DESCRIPTION = """Estimate every factor table of a spec from an account panel (CSV or Parquet) and a
 market-size table, and write the compiled model artifact to MODEL_DIR with diagnostics.json (and a
-readable diagnostics.txt) inside. Probabilities are Dirichlet posterior means shrunk towards the
-parent cell; never-member join rates come from first joins and the market sizes; a propensity
-band axis is fitted from its covariates. Nothing is written when fitting fails.
+readable diagnostics.txt) inside. Probabilities are hierarchical Dirichlet posterior means: each
+cell shrunk towards its parent, the parents pooling the given axes in the order the data favour
+(marginal likelihood), with posterior draws that carry the doubt about how hard to pool;
+never-member join rates come from first joins and the market sizes (printed raw and as used); a propensity
+band axis is fitted from its covariates. With --population (a sample of the addressable population:
+market, the band's covariates, optional weight) never-members are placed in propensity bands and
+their join hazard is estimated per market and band; without it, per-band acquisition values assume
+that never-members' joining does not depend on the band. Nothing is written when fitting fails.
 The panel and the market sizes may be tables (or views, or queries) in a PostgreSQL database:
 --panel postgresql://USER@HOST:PORT/DB --panel-table TABLE (password from PGPASSWORD or ~/.pgpass).
 
@@ -31,14 +36,20 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     add_table_arguments(p, "panel", "account panel (.csv or .parquet; see README 'Fitting from an account panel')",
                         required=True)
     add_table_arguments(p, "markets", "market-size table (market, size, low, high[, period])", required=True)
+    p.add_argument("--population", default=None,
+                   help="a sample of the addressable population (.csv or .parquet: market, the propensity band's "
+                        "covariates, optional weight): places never-members in bands for a join hazard by band")
     p.add_argument("-o", "--output", required=True, help="model directory to write")
     p.add_argument("--strength", default="auto",
-                   help="prior strength in pseudo-moves per cell, or auto (empirical Bayes; default)")
+                   help="prior strength in pseudo-moves per cell at every level of pooling, or auto (each "
+                        "parent cell's from the marginal likelihood; default)")
     p.add_argument("--drop-forbidden", action="store_true",
                    help="drop moves the spec's rules forbid (counted in the diagnostics) instead of failing")
     p.add_argument("--gaps", default="error", choices=["error", "non_member"],
                    help="a missing period inside an account's history: an error (default) or a former-member period")
-    p.add_argument("--draws", type=int, default=100, help="posterior draws of every table for intervals (default 100)")
+    p.add_argument("--draws", type=int, default=100,
+                   help="posterior draws of every table for intervals (default 100; 0 for none, else at least "
+                        "20: a 90%% interval needs 2 / (1 - 0.9) = 20)")
     p.add_argument("--seed", type=int, default=0, help="seed of the posterior draws (default 0)")
     p.add_argument("--engine", default="duckdb", choices=["duckdb", "spark"],
                    help="where the counting query runs: the embedded DuckDB (default) or Spark SQL (pyspark; "
@@ -66,8 +77,6 @@ def run(args: argparse.Namespace) -> int:
         except ValueError:
             raise PanelError(f"'{args.strength}' is not a number; give pseudo-moves > 0 or auto",
                              where="--strength") from None
-    if args.draws < 0:
-        raise PanelError("give 0 or more draws", where="--draws")
     panel, markets = table_source(args, "panel"), table_source(args, "markets")
     spec = load_spec(args.spec)
     opts = FitOptions(strength=strength, forbidden="drop" if args.drop_forbidden else "error", gaps=args.gaps,
@@ -84,7 +93,7 @@ def run(args: argparse.Namespace) -> int:
 
     res = fit_to_dir(spec, panel, markets, args.output, opts, source=args.spec,
                      progress=not args.quiet and sys.stderr.isatty(),
-                     before_publish=None if args.no_solve else store_values)
+                     before_publish=None if args.no_solve else store_values, population=args.population)
     if not args.quiet:
         print(summary_text(res.diagnostics))
         print(f"wrote {args.output} (version {res.model.version}, {res.model.n_states:,} states)")
