@@ -7,15 +7,29 @@ STAMP := $(VENV)/.installed
 GLIBC_TUNABLES ?= glibc.malloc.hugetlb=1
 export GLIBC_TUNABLES
 
-.PHONY: demo test bench proto lint clean venv
+# the exact versions the tests and benchmarks run with (`make lock` writes it from the venv)
+LOCK := requirements.lock
+
+.PHONY: demo test bench proto lint clean venv lock
 
 venv: $(STAMP)
 
-$(STAMP): pyproject.toml
+# installs with the lock as constraints: a fresh clone gets exactly the tested versions (a
+# dependency pyproject.toml names that the lock does not yet pin installs unpinned: `make lock`)
+$(STAMP): pyproject.toml $(LOCK)
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install -q --upgrade pip
-	$(PY) -m pip install -q -e '.[all,test]'
+	$(PY) -m pip install -q -c $(LOCK) -e '.[all,test]'
 	touch $(STAMP)
+
+# after changing a dependency (pyproject.toml, or `pip install -U NAME` in the venv) and running
+# the tests: record what the venv holds, the project itself left out
+lock:
+	test -x $(PY) || { echo "no $(VENV): run make venv first"; exit 1; }
+	{ echo "# written by make lock (pip freeze of $(VENV)): the versions the tests and benchmarks ran with;"; \
+	  echo "# make venv installs with this file as constraints. Python $$($(PY) -c 'import sys; print(sys.version.split()[0])'), $$(uname -sm)"; \
+	  $(PY) -m pip freeze --exclude-editable; } > $(LOCK).tmp
+	mv $(LOCK).tmp $(LOCK)
 
 demo: $(STAMP)
 	$(VENV)/bin/stateworth demo

@@ -9,7 +9,6 @@ property-based bad requests. Expected figures come from the valuation library in
 from __future__ import annotations
 
 import json
-import urllib.request
 
 import grpc
 import numpy as np
@@ -17,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from serving import MODEL, STATE, ServerProcess, compile_tiny, write_artifact
+from serving import MODEL, STATE, ServerProcess, compile_tiny, sample, scrape, write_artifact
 from stateworth.clients import client as cl
 from stateworth.v1 import valuation_service_pb2 as pb
 from stateworth.v1 import valuation_service_pb2_grpc as vgrpc
@@ -290,11 +289,25 @@ def test_failed_load_leaves_models_untouched(served, client):
 
 # ---- metrics, logs, command line --------------------------------------------------------------
 def test_metrics_endpoint(served, client):
+    get = "/stateworth.v1.ValuationService/GetValue"
+    before = scrape(served["server"].metrics_port)
     client.value(MODEL, STATE)
-    text = urllib.request.urlopen(f"http://127.0.0.1:{served['server'].metrics_port}/metrics", timeout=10).read().decode()
-    assert 'stateworth_requests_total{method="/stateworth.v1.ValuationService/GetValue",code="OK"}' in text
-    assert 'stateworth_request_seconds_bucket{method="/stateworth.v1.ValuationService/GetValue",le="+Inf"}' in text
-    assert "stateworth_models_loaded 2" in text
+    with pytest.raises(cl.InvalidArgument):
+        client.value(MODEL, dict(STATE, market="nowhere"))
+    after = scrape(served["server"].metrics_port)
+    for code in ("OK", "INVALID_ARGUMENT"):
+        assert sample(after, "stateworth_requests_total", method=get, code=code) == \
+            (sample(before, "stateworth_requests_total", method=get, code=code) or 0) + 1
+    n = sample(after, "stateworth_request_seconds_count", method=get)
+    assert n == (sample(before, "stateworth_request_seconds_count", method=get) or 0) + 2
+    assert sample(after, "stateworth_request_seconds_bucket", method=get, le="+Inf") == n
+    assert sample(after, "stateworth_models_loaded") == 2
+    assert all(sample(after, "stateworth_reloads_total", result=r) is not None for r in ("ok", "failed"))
+    # one registry per server: nothing else (no process or platform collectors, no _created)
+    assert {name for name, _ in after} <= {
+        "stateworth_requests_total", "stateworth_request_seconds_bucket", "stateworth_request_seconds_sum",
+        "stateworth_request_seconds_count", "stateworth_reloads_total", "stateworth_models_loaded",
+        "stateworth_model_generation", "stateworth_work_cache_hits_total", "stateworth_work_cache_misses_total"}
 
 
 def test_logs_are_json_and_never_carry_request_contents(served, client):
