@@ -31,6 +31,18 @@ lock:
 	  $(PY) -m pip freeze --exclude-editable; } > $(LOCK).tmp
 	mv $(LOCK).tmp $(LOCK)
 
+# ruff (pyflakes and pycodestyle, configured in pyproject.toml) and mypy on the installed layout:
+# the package maps top-level folders onto stateworth.* (pyproject's package-dir), so mypy reads a
+# tree of links to them under build/typecheck
+TYPECHECK := build/typecheck
+lint: $(STAMP)
+	$(VENV)/bin/ruff check stateworth rules solver estimation valuation server clients bench tests
+	rm -rf $(TYPECHECK) && mkdir -p $(TYPECHECK)/stateworth
+	for f in stateworth/*.py stateworth/py.typed; do ln -s ../../../$$f $(TYPECHECK)/stateworth/; done
+	for d in rules solver estimation valuation server clients; do ln -s ../../../$$d $(TYPECHECK)/stateworth/$$d; done
+	ln -s ../../../proto/stateworth/v1 $(TYPECHECK)/stateworth/v1
+	cd $(TYPECHECK) && ../../$(VENV)/bin/mypy --config-file ../../pyproject.toml -p stateworth
+
 demo: $(STAMP)
 	$(VENV)/bin/stateworth demo
 

@@ -22,7 +22,6 @@ Run: ``.venv/bin/python bench/coverage_bench.py --repeats 20`` (writes bench/out
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 import tempfile
 import time

@@ -30,7 +30,6 @@ def _cell_name(spec, factor: Factor, idx) -> dict[str, str]:
 def overlap_report(spec, factor: Factor, fit: FactorFit, skip: np.ndarray | None = None) -> dict:
     """Status-factor cells with observed moves but none into a member or none into a non-member
     next status. ``skip`` (bool over the given cells) leaves out cells not fitted from moves."""
-    st = spec.axis_levels(factor.axis)
     mem = spec.member_flags()
     c = fit.counts
     n = c.sum(axis=-1)

@@ -94,7 +94,6 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
                                 else table_from_rows(spec, f), dtype=np.float64) for f in factors}
     grid = spec.grid_order
     st = spec.status_axis
-    st_levels = spec.axis_levels(st)
     nm = lay.code(st, lay.never_member)
     period = spec.model.period
     p0 = parse_period(start if start is not None else DEFAULT_START, "--start", period)
@@ -147,7 +146,6 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
         row["revenue"] = price[cur[st][who], cur[lay.market][who]]
         chunks.append(row)
     cols = {k: np.concatenate([c[k] for c in chunks]) for k in chunks[0]}
-    n = len(cols["account"])
     arrays = {"account": pa.array(cols["account"]),
               "period": pa.DictionaryArray.from_arrays(
                   pa.array((cols["p"] - p0).astype(np.int32)),

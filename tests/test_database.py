@@ -190,7 +190,7 @@ def test_unreachable_server(pgpassword, tmp_path, capsys):
     url = f"postgresql://stateworth@127.0.0.1:{free_port()}/{DB}"  # nothing listens there
     err = _bad(["--panel", url, "--panel-table", "panel", "--markets", url, "--markets-table", "markets"],
                tmp_path, capsys)
-    assert f"error: postgresql://stateworth@127.0.0.1:" in err and "(--panel): cannot connect to the database" in err
+    assert "error: postgresql://stateworth@127.0.0.1:" in err and "(--panel): cannot connect to the database" in err
     assert "Connection refused" in err and "check the host, the port" in err
 
 

@@ -469,11 +469,11 @@ def test_each_step_transpose_is_the_adjoint_of_its_apply(limits):
     rng = np.random.default_rng(0)
     x = rng.normal(size=model.n_states)
     frame = jnp.asarray(x.reshape(op.plan.grid_shape))
-    for st in steps:
+    for step in steps:
         before = jax.ShapeDtypeStruct(frame.shape, frame.dtype)
-        out = st.apply(op.arrays, frame)
+        out = step.apply(op.arrays, frame)
         w = jnp.asarray(rng.normal(size=out.shape))
-        back = st.transpose(op.arrays, w, before)
+        back = step.transpose(op.arrays, w, before)
         assert back.shape == frame.shape
         np.testing.assert_allclose(float(jnp.vdot(out, w)), float(jnp.vdot(frame, back)), rtol=1e-12)
         frame = out
@@ -504,7 +504,8 @@ def test_offsets_step_gradient_matches_the_dense_contraction():
     lam, v = jnp.asarray(rng.normal(size=n)), jnp.asarray(rng.normal(size=n))
 
     def grad(model):
-        f = lambda t: jnp.dot(lam, model.operator.with_tables({"band": t}).mv(v))
+        def f(t):
+            return jnp.dot(lam, model.operator.with_tables({"band": t}).mv(v))
         return np.asarray(jax.grad(f)(jnp.asarray(tables["band"])))
 
     g_off, g_dense = grad(ops[0.5]), grad(ops[0.0])

@@ -198,7 +198,7 @@ def test_cohort_and_campaign(tv, tiny):
     same = tv.cohort_contrast([(PROSPECT, 3), ({**PROSPECT, "engagement": "light"}, 1)],
                               lambda c: {**c, "status": "solo"})
     assert same.value == pytest.approx(co.value, rel=1e-12)
-    camp = tv.campaign({"harbor": 100, "upland": 40}, "solo", weights=w + (np.arange(tiny.n_states) == 
+    camp = tv.campaign({"harbor": 100, "upland": 40}, "solo", weights=w + (np.arange(tiny.n_states) ==
                        tiny.grid.flat_index({**PROSPECT, "market": "upland"})))
     per = camp.details["markets"]
     assert per["harbor"]["value_per_acquisition"] == pytest.approx(co.value, rel=1e-12)
