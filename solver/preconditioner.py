@@ -24,7 +24,12 @@ Smoothing depth ``d`` (default :data:`SMOOTH`): each GMRES iteration also pays f
 against the basis, which now costs more than a float32 apply, so deeper smoothing and fewer
 iterations win (measured, 1e-8, float32 smoother: d = 4, 6, 8, 10 took 21, 16, 13, 11 iterations
 and 0.34, 0.31, 0.26, 0.24 s at 3.6 x 10^5 states; 27, 19, 15, 12 iterations and 3.2, 2.1, 1.6,
-1.4 s at 1.4 x 10^6; d = 12 no better).
+1.4 s at 1.4 x 10^6; d = 12 no better on those generator grids). Fitted tables are rough along
+the counters (each tenure level estimated on its own, never-visited cells at their parents'
+values), as a posterior draw's are, and there deeper smoothing pays: d = 10, 16, 24 took 20, 14,
+11 iterations per stream on a fitted 10^4-state generator model (0.038, 0.028, 0.047 s), 19, 14,
+11 on a weekly grid with a 104-week tenure (0.112, 0.097, 0.100 s), and 11, 8, 7 on the 10^5
+generator grid (0.161, 0.150, 0.146 s): d = 16 is the default.
 """
 
 from __future__ import annotations
@@ -47,7 +52,7 @@ if TYPE_CHECKING:
 #: iterations, K = 500 took 11, but its inverse took 0.24 s against 0.03 s)
 MAX_BLOCK = 256
 #: smoothing applies per preconditioner call (see the module doc for the measurements)
-SMOOTH = 10
+SMOOTH = 16
 #: counters with at least this many levels get their cap as a coarse bin of its own
 CAP_SPLIT_MIN = 24
 
