@@ -186,10 +186,10 @@ def per_figure(truth: dict[str, float], panels: list[dict]) -> dict:
 
 def run(repeats: int, accounts: int, periods: int, draws: int, level: float, seed0: int = 1000,
         options: dict | None = None, spec_path: Path = SPEC, log=print) -> dict:
-    from stateworth.config import float64
+    from stateworth.config import use_jax
     from stateworth.rules import load_spec
 
-    float64()
+    use_jax()
     spec = load_spec(spec_path)
     figs = figures(spec)
     truth = truth_answers(spec, figs)

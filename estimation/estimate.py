@@ -40,7 +40,7 @@ per draw, every strength is drawn from its grid posterior, and top down
 ``n (1 + alpha) / (n + alpha)`` moves, its Dirichlet-multinomial worth; the cells keep their own
 counts). Within one account, successive moves are independent given the state under the model's
 Markov assumption, so moves, not accounts, are the unit of the likelihood; heterogeneity the
-state does not capture would make the intervals too narrow (see README, "Assumptions").
+state does not capture would make the intervals too narrow (see README, "Assumptions and cautions").
 """
 
 from __future__ import annotations

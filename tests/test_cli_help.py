@@ -70,7 +70,7 @@ def _readme_headings() -> set[str]:
     return out
 
 
-POINTER = re.compile(r"""README(?:\.md)?[`,:]?\s*(?:section\s+)?\\?["']([^"'\\]+)\\?["']""")
+POINTER = re.compile(r"""README(?:\.md)?(?!'s\b)[`,:]?\s*(?:section\s+)?\\?["']([^"'\\]+)\\?["']""")
 SOURCE_DIRS = ("stateworth", "rules", "solver", "estimation", "valuation", "server", "clients", "proto", "bench")
 
 
