@@ -9,10 +9,16 @@ examples/fitness.toml (cached under bench/out/); then
 * ``counts``: the counting query alone on DuckDB;
 * ``pandas``: read the same Parquet file with pandas, sort, shift within accounts, derive the
   tenure counter with grouped cumulative sums, and count with ``groupby().size()``; its counts
-  are checked equal to the DuckDB ones.
+  are checked equal to the DuckDB ones;
+* ``postgres`` (when a PostgreSQL server can be run: tests/pgserver.py, Debian's binaries): the
+  same panel loaded with COPY into a table as a user would keep it (bigint accounts, date
+  periods, text levels, numeric revenue) on a throwaway local server, then ``read``: the rows
+  through the ADBC driver into Arrow alone, and ``fit_pg``: the whole fit from the table, its
+  model version checked equal to the Parquet fit's. The server runs on the same cores as the
+  fit (a loopback connection), so these times include the server's work.
 
 Writes bench/out/fit.json and prints a table. ``python bench/fit_bench.py --rows 1000000``
-for a quick run.
+for a quick run; ``--no-postgres`` leaves the database out.
 """
 
 from __future__ import annotations
@@ -39,6 +45,12 @@ def peak_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
+def cpu_s() -> float:
+    """CPU seconds of this process (all threads): steadier than wall time on a busy machine."""
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+
+
 def make_panel(rows: int) -> Path:
     from stateworth.rules import load_spec
     from stateworth.estimation.simulate import simulate_panel, write_simulation
@@ -57,16 +69,93 @@ def make_panel(rows: int) -> Path:
     return path
 
 
-def child_fit(panel: str, markets: str) -> dict:
+def _db_sources(url: str):
+    from stateworth.estimation.sources import source_of
+
+    return source_of(url, "panel", option="--panel"), source_of(url, "markets", option="--markets")
+
+
+def child_fit(panel: str, markets: str | None = None) -> dict:
+    """The whole fit from the Parquet file, or (a URL alone) from tables panel and markets."""
     from stateworth.rules import load_spec
     from stateworth.estimation.fit import FitOptions, fit_panel
 
     spec = load_spec(SPEC)
-    t0 = time.perf_counter()
+    if markets is None:
+        panel, markets = _db_sources(panel)
+    c0, t0 = cpu_s(), time.perf_counter()
     res = fit_panel(spec, panel, markets, FitOptions(draws=100))
     t = time.perf_counter() - t0
-    return {"seconds": t, "rows": res.diagnostics["panel"]["rows"], "moves": res.joint.total,
-            "version": res.model.version, "peak_mb": peak_mb()}
+    return {"seconds": t, "cpu_seconds": cpu_s() - c0, "rows": res.diagnostics["panel"]["rows"],
+            "moves": res.joint.total, "version": res.model.version, "peak_mb": peak_mb()}
+
+
+def child_read_pg(url: str) -> dict:
+    from stateworth.estimation.panel import Layout, panel_columns
+    from stateworth.estimation.sources import read_arrow
+    from stateworth.rules import load_spec
+
+    panel, _ = _db_sources(url)
+    c0, t0 = cpu_s(), time.perf_counter()
+    t = read_arrow(panel, panel_columns(Layout.of(load_spec(SPEC))))
+    return {"seconds": time.perf_counter() - t0, "cpu_seconds": cpu_s() - c0, "rows": t.num_rows,
+            "arrow_mb": t.nbytes / 2 ** 20, "peak_mb": peak_mb()}
+
+
+def server_cpu_s(server) -> float:
+    """CPU seconds the server has used: the postmaster's own and its ended children's
+    (each connection's backend is a child that ends when the client disconnects)."""
+    pid = int((server.root / "data" / "postmaster.pid").read_text().split()[0])
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return sum(int(x) for x in fields[11:15]) / os.sysconf("SC_CLK_TCK")  # utime stime cutime cstime
+
+
+def run_child_on_server(server, kind: str, *args: str) -> dict:
+    before = server_cpu_s(server)
+    out = run_child(kind, *args)
+    time.sleep(1.0)  # the backend has ended; let the postmaster reap it
+    return {**out, "server_cpu_seconds": server_cpu_s(server) - before}
+
+
+def load_postgres(server, panel: Path, markets: str) -> float:
+    """The Parquet panel into table ``panel`` (and the sizes into ``markets``) with COPY from CSV;
+    returns the seconds COPY and VACUUM ANALYZE took (the CSV export not counted)."""
+    import duckdb
+
+    csv = OUT / "fit_panel_pg.csv"
+    con = duckdb.connect()
+    con.execute(f"COPY (SELECT account, CAST(period AS VARCHAR) || '-01' AS period, market, status, engagement, "
+                f"round(revenue, 2) AS revenue FROM read_parquet('{panel}')) TO '{csv}' (HEADER, DELIMITER ',')")
+    con.close()
+    server.execute("CREATE TABLE panel (account bigint, period date, market text, status text, engagement text, "
+                   "revenue numeric(12, 2))", "CREATE TABLE markets (market text, size bigint, low numeric, high numeric)")
+    t0 = time.perf_counter()
+    server.copy_csv("panel", csv)
+    server.copy_csv("markets", Path(markets))
+    server.execute("VACUUM ANALYZE panel")
+    secs = time.perf_counter() - t0
+    csv.unlink()
+    return secs
+
+
+def bench_postgres(panel: Path, markets: str, parquet_version: str) -> dict:
+    """Start a throwaway server, load the panel, time the read and the fit from it."""
+    sys.path.insert(0, str(ROOT / "tests"))
+    from pgserver import PASSWORD, PostgresServer, find_bindir
+
+    bindir, why = find_bindir()
+    if bindir is None:
+        return {"skipped": why}
+    with PostgresServer(bindir) as server:
+        load_s = load_postgres(server, panel, markets)
+        os.environ["PGPASSWORD"] = PASSWORD  # the children's, through libpq
+        url = server.url()
+        read = run_child_on_server(server, "read_pg", url)
+        fit = run_child_on_server(server, "fit", url)
+    rows = fit["rows"]
+    return {"copy_load_seconds": load_s, "read": {**read, "rows_per_second": rows / read["seconds"]},
+            "fit": {**fit, "rows_per_second": rows / fit["seconds"]},
+            "same_version_as_parquet": fit["version"] == parquet_version}
 
 
 def child_counts(panel: str) -> dict:
@@ -166,14 +255,16 @@ def run_child(kind: str, *args: str) -> dict:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--rows", type=int, default=10_000_000, help="panel rows at least (default 10 million)")
+    ap.add_argument("--no-postgres", action="store_true", help="leave out the PostgreSQL read and fit")
     ap.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
         kind, rest = args.child[0], args.child[1:]
-        fn = {"fit": child_fit, "counts": child_counts, "pandas": child_pandas}[kind]
+        fn = {"fit": child_fit, "counts": child_counts, "pandas": child_pandas, "read_pg": child_read_pg}[kind]
         print(json.dumps(fn(*rest)))
         return
     OUT.mkdir(parents=True, exist_ok=True)
+    load0 = os.getloadavg()[0]  # other work on the machine stretches wall times; CPU seconds less so
     t0 = time.perf_counter()
     panel = make_panel(args.rows)
     markets = str(panel).replace(".parquet", ".markets.csv")
@@ -181,6 +272,7 @@ def main() -> None:
     counts = run_child("counts", str(panel))
     fit = run_child("fit", str(panel), markets)
     pd_ = run_child("pandas", str(panel))
+    pg = None if args.no_postgres else bench_postgres(panel, markets, fit["version"])
     rows = fit["rows"]
     res = {
         "panel_rows": rows, "moves": fit["moves"], "cpu_count": os.cpu_count(),
@@ -192,17 +284,36 @@ def main() -> None:
         "pandas_groupby": {**pd_, "rows_per_second": rows / pd_["seconds"]},
         "speedup_fit_vs_pandas_counts": pd_["seconds"] / fit["seconds"],
         "speedup_counts_vs_pandas_counts": pd_["seconds"] / (counts["seconds_load_validate"] + counts["seconds_count"]),
+        "postgres": pg,
+        "load_average_start": load0, "load_average_end": os.getloadavg()[0],
     }
+    if pg and "fit" in pg:
+        res["ratio_fit_postgres_vs_parquet_seconds"] = pg["fit"]["seconds"] / fit["seconds"]
     (OUT / "fit.json").write_text(json.dumps(res, indent=2))
-    print(f"panel: {rows:,} rows, {fit['moves']:,} moves ({os.cpu_count()} cores)")
-    print(f"{'step':<34}{'seconds':>9}{'rows/s':>14}{'peak MB':>10}")
-    print(f"{'stateworth fit (whole)':<34}{fit['seconds']:>9.2f}{rows / fit['seconds']:>14,.0f}{fit['peak_mb']:>10.0f}")
+    print(f"panel: {rows:,} rows, {fit['moves']:,} moves ({os.cpu_count()} cores, load average "
+          f"{res['load_average_start']:.1f} at the start, {res['load_average_end']:.1f} at the end)")
+    print(f"{'step':<34}{'seconds':>9}{'rows/s':>14}{'peak MB':>10}{'CPU s':>8}")
+    print(f"{'stateworth fit (whole)':<34}{fit['seconds']:>9.2f}{rows / fit['seconds']:>14,.0f}{fit['peak_mb']:>10.0f}"
+          f"{fit['cpu_seconds']:>8.1f}")
     lc = counts["seconds_load_validate"] + counts["seconds_count"]
     print(f"{'  read+validate+count (DuckDB)':<34}{lc:>9.2f}{rows / lc:>14,.0f}{counts['peak_mb']:>10.0f}")
     print(f"{'  count query alone':<34}{counts['seconds_count']:>9.2f}{rows / counts['seconds_count']:>14,.0f}{'':>10}")
     print(f"{'pandas read+sort+shift+groupby':<34}{pd_['seconds']:>9.2f}{rows / pd_['seconds']:>14,.0f}{pd_['peak_mb']:>10.0f}")
+    if pg and "fit" in pg:
+        f2, r2 = pg["fit"], pg["read"]
+        print(f"{'stateworth fit from PostgreSQL':<34}{f2['seconds']:>9.2f}{rows / f2['seconds']:>14,.0f}{f2['peak_mb']:>10.0f}"
+              f"{f2['cpu_seconds']:>8.1f} + server {f2['server_cpu_seconds']:.1f}")
+        print(f"{'  read via ADBC into Arrow alone':<34}{r2['seconds']:>9.2f}{rows / r2['seconds']:>14,.0f}{r2['peak_mb']:>10.0f}"
+              f"{r2['cpu_seconds']:>8.1f} + server {r2['server_cpu_seconds']:.1f}")
+        print(f"{'  (load with COPY, not in the fit)':<34}{pg['copy_load_seconds']:>9.2f}"
+              f"{rows / pg['copy_load_seconds']:>14,.0f}{'':>10}")
+    elif pg:
+        print(f"PostgreSQL left out: {pg['skipped']}")
     print(f"pandas counts identical to DuckDB's: {pd_['same_counts_as_duckdb']}; whole fit is "
           f"{res['speedup_fit_vs_pandas_counts']:.1f}x the pandas counting alone")
+    if pg and "fit" in pg:
+        print(f"fit from PostgreSQL: {res['ratio_fit_postgres_vs_parquet_seconds']:.2f}x the Parquet fit's time, "
+              f"same model version: {pg['same_version_as_parquet']}")
 
 
 if __name__ == "__main__":

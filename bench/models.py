@@ -48,7 +48,7 @@ def spec_dict(markets: int, tenure: int, bands: int) -> dict:
             "engagement": {"kind": "chance", "levels": [f"e{i}" for i in range(5)],
                            "given": ["next.status", "engagement"], "moves": _within(5, 2, "e{:d}")},
             # the rule "a band moves at most two levels a month" makes the band an offsets step
-            # (rules/operator.py) instead of a dense contraction over all its levels
+            # (rules/steps.py) instead of a dense contraction over all its levels
             "band": {"kind": "chance", "levels": [f"b{i:02d}" for i in range(bands)], "given": ["band"],
                      "moves": _within(bands, 2, "b{:02d}")},
         },
@@ -144,7 +144,7 @@ def weekly(size: str = "large", seed: int = 0) -> tuple[dict, dict[str, np.ndarr
     x season (13 four-week periods, a cycle) x status (prospect, lapsed, 6 plans) x usage band
     (4 levels, dense). beta = 0.9985 a week (8.1 % a year); joining and churn vary by season,
     churn falls with tenure and usage. "large": 8 x 104 x 13 x 8 x 4 = 346,112 states."""
-    R, T, C = {"large": (8, 104, 13), "small": (2, 12, 13)}[size]
+    R, T, C = {"large": (8, 104, 13), "medium": (1, 104, 13), "small": (2, 12, 13)}[size]
     P, U = 6, 4
     S = 2 + P
     rng = np.random.default_rng(seed)
@@ -234,7 +234,8 @@ def flat(size: str = "large", seed: int = 0) -> tuple[dict, dict[str, np.ndarray
     use = np.zeros((S, U, U))
     use[:2] = np.eye(U)[[0] * U]
     use[2:] = _rows(rng, (3, U, U), np.full((3, U), 0.6), np.ones((U, U), dtype=bool))
-    affinity = _rows(rng, (A, D, A), np.full((A, D), 0.7), np.ones((A, A), dtype=bool))
+    # given ["affinity", "device"]: drawn as (device, affinity, affinity') and laid out in given order
+    affinity = np.transpose(_rows(rng, (D, A, A), np.full((D, A), 0.7), np.ones((A, A), dtype=bool)), (1, 0, 2))
     device = _rows(rng, (D, D), np.full(D, 0.9), np.ones((D, D), dtype=bool))
     return spec, {"status": tab, "usage": use, "affinity": affinity, "device": device}
 

@@ -8,6 +8,10 @@ would exceed 5 minutes. It also measures memory bandwidth (a large numpy copy) a
 operator apply with its bandwidth floor (bytes an apply must read and write / bandwidth).
 
 Writes bench/out/solve.json and prints a table. Options: --sizes 10k,100k --skip-others
+
+Then (unless --skip-others) the other benchmarks, each in its own process: the cold/warm
+benchmark (bench/cold_bench.py: fresh processes as a user meets them, beside the plain scipy
+script, on fitted, generator and family models; bench/out/cold.json), fit, valuation, serving.
 """
 
 from __future__ import annotations
@@ -170,7 +174,7 @@ def main() -> None:
     _write(OUT / "solve.json", doc)
     print(f"\nwrote {OUT / 'solve.json'}")
     if not args.skip_others:
-        for extra in ("fit_bench.py", "valuation_bench.py", "serve_bench.py"):
+        for extra in ("cold_bench.py", "fit_bench.py", "valuation_bench.py", "serve_bench.py", "backtest_bench.py"):
             if (HERE / extra).exists():
                 print(f"\n== {extra} ==", flush=True)
                 subprocess.run([sys.executable, str(HERE / extra)], check=False)

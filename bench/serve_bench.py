@@ -311,16 +311,19 @@ def bare_server(response_file: str, threads: int) -> int:
 
 def request_counts(metrics_port: int | None) -> dict[str, int]:
     """GetValue calls finished so far by status code, summed over workers (server metrics)."""
-    import re
     import urllib.request
+
+    from prometheus_client.parser import text_string_to_metric_families
 
     if metrics_port is None:
         return {}
     with urllib.request.urlopen(f"http://127.0.0.1:{metrics_port}/metrics", timeout=10) as r:
         text = r.read().decode()
     out: dict[str, int] = {}
-    for m in re.finditer(r'^stateworth_requests_total\{[^}]*method="[^"]*/GetValue",code="(\w+)"\} (\d+)', text, re.M):
-        out[m.group(1)] = out.get(m.group(1), 0) + int(m.group(2))
+    for family in text_string_to_metric_families(text):
+        for s in family.samples:
+            if s.name == "stateworth_requests_total" and s.labels.get("method", "").endswith("/GetValue"):
+                out[s.labels["code"]] = out.get(s.labels["code"], 0) + int(s.value)
     return out
 
 

@@ -33,12 +33,16 @@ def _modules():
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from stateworth.version import __version__  # package metadata only: --help stays quick
+
     parser = argparse.ArgumentParser(
         prog="stateworth",
         description="Value customer-state moves (acquisition, upgrade, engagement, win-back) as "
                     "differences of value functions of a Markov chain over customer states.",
         epilog="Run `stateworth COMMAND --help` for each command's options and an example. "
                "Figures are model-based estimates under stated causal assumptions, not accounting figures.")
+    parser.add_argument("--version", action="version", version=f"stateworth {__version__}",
+                        help="print the installed version of stateworth and exit")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for mod in _modules():
         p = sub.add_parser(mod.NAME, help=mod.HELP, description=getattr(mod, "DESCRIPTION", mod.HELP),

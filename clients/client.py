@@ -11,20 +11,22 @@
   stubs for editors); batch values come back as ``np.asarray(response.values)``.
 * Deadlines by default: ``timeout`` (10 s) for lookups, ``solve_timeout`` (120 s) for calls that
   solve (transition changes, marginal values, read-outs, loads).
-* UNAVAILABLE (server starting, restarting, or no model loaded yet) is retried with exponential
-  backoff and jitter, ``retries`` times, within the deadline. Nothing else is retried.
+* UNAVAILABLE (server starting, restarting, or no model loaded yet) is retried by gRPC itself
+  (its retry policy, given in the channel's service config: :func:`service_config`) with
+  exponential backoff and jitter, ``retries`` times (at most 4: gRPC allows 5 attempts), within
+  the call's deadline. Nothing else is retried, and neither is the streaming call.
 * Failures raise :class:`CallError` subclasses (``InvalidArgument``, ``NotFound``...), which are
   :class:`~stateworth.errors.StateworthError` s carrying the status code, the message and the
   field violations the server attached (``err.field``, ``err.violations``).
-* Several addresses (replicas) are balanced round-robin by gRPC itself.
+* Several addresses (replicas) are balanced round-robin by gRPC itself (``round_robin`` in the
+  same service config).
 
 Figures are model-based estimates under the model's causal assumptions, not accounting figures.
 """
 
 from __future__ import annotations
 
-import random
-import time
+import json
 from pathlib import Path
 from typing import Any, Iterable, Iterator, Mapping, Sequence
 
@@ -151,31 +153,82 @@ def _opt(request, **kw) -> None:
             setattr(request, k, v)
 
 
+# ---- the channel's service config ---------------------------------------------------------------
+#: gRPC clamps a retry policy's maxAttempts to this (the first attempt included)
+MAX_ATTEMPTS = 5
+
+
+def unary_methods() -> list[dict[str, str]]:
+    """The service config's names of every unary method the client calls (the streaming ones
+    are not retried: a retried stream would send its chunks again)."""
+    return [{"service": svc.full_name, "method": m.name}
+            for file in (pb.DESCRIPTOR, apb.DESCRIPTOR, health_pb2.DESCRIPTOR)
+            for svc in file.services_by_name.values()
+            for m in svc.methods if not (m.client_streaming or m.server_streaming)]
+
+
+def _duration(seconds: float) -> str:
+    return f"{seconds:.6f}s"  # a protobuf JSON Duration
+
+
+def service_config(retries: int = 4, backoff: float = 0.05, max_backoff: float = 2.0,
+                   balance: bool = False) -> dict[str, Any]:
+    """The gRPC service config of the client's channels (passed as ``grpc.service_config``).
+
+    ``retries`` > 0: a retry policy for UNAVAILABLE on every unary method, ``retries + 1``
+    attempts (at most :data:`MAX_ATTEMPTS`), the n-th retry after a random pause in
+    ``[0, min(backoff * 2**(n-1), max_backoff)]`` seconds (gRPC's jitter), all within the call's
+    deadline. ``balance``: the ``round_robin`` policy over the addresses the target resolves to.
+    See gRPC's "Retry design" (A6) and "Service config" documents."""
+    if retries < 0 or retries >= MAX_ATTEMPTS:
+        raise StateworthError(f"retries must be 0 to {MAX_ATTEMPTS - 1} (gRPC makes at most {MAX_ATTEMPTS} attempts "
+                              f"of a call); got {retries}", where="retries")
+    if retries and not (0 < backoff <= max_backoff):
+        raise StateworthError(f"backoff must be positive and at most max_backoff ({max_backoff} s); got {backoff}",
+                              where="backoff")
+    config: dict[str, Any] = {}
+    if balance:
+        config["loadBalancingConfig"] = [{"round_robin": {}}]
+    if retries:
+        config["methodConfig"] = [{
+            "name": unary_methods(),
+            "retryPolicy": {"maxAttempts": retries + 1, "initialBackoff": _duration(backoff),
+                            "maxBackoff": _duration(max_backoff), "backoffMultiplier": 2,
+                            "retryableStatusCodes": ["UNAVAILABLE"]},
+        }]
+    return config
+
+
 # ---- the client -------------------------------------------------------------------------------
 class Client:
     """Client of one server, or of replicas (a sequence of addresses, balanced round-robin).
 
     ``tls_ca``: PEM file (or bytes) of the CA that signed the server certificate (TLS on);
     ``tls=True`` with no CA uses the system roots. ``server_name`` overrides the name checked
-    against the certificate. ``token`` / ``admin_token``: bearer tokens."""
+    against the certificate. ``token`` / ``admin_token``: bearer tokens. ``timeout`` and
+    ``solve_timeout``: default deadlines in seconds; ``retries``, ``backoff``, ``max_backoff``:
+    the channel's retry policy for UNAVAILABLE (:func:`service_config`)."""
 
     def __init__(self, target: str | Sequence[str] = "127.0.0.1:50051", *, token: str | None = None,
                  admin_token: str | None = None, tls_ca: str | bytes | Path | None = None, tls: bool = False,
                  server_name: str | None = None, timeout: float = 10.0, solve_timeout: float = 120.0,
                  retries: int = 4, backoff: float = 0.05, max_backoff: float = 2.0,
                  max_message_bytes: int = 64 * 1024 * 1024) -> None:
-        options: list[tuple[str, Any]] = [("grpc.max_receive_message_length", max_message_bytes),
-                                          ("grpc.max_send_message_length", max_message_bytes),
-                                          ("grpc.enable_retries", 0)]
         if isinstance(target, str):
-            address = target
+            address, balance = target, False
         else:
             addrs = list(target)
             if not addrs:
                 raise StateworthError("no server address given", where="target")
             address = addrs[0] if len(addrs) == 1 else "ipv4:" + ",".join(addrs)
-            if len(addrs) > 1:
-                options.append(("grpc.lb_policy_name", "round_robin"))
+            balance = len(addrs) > 1
+        config = service_config(int(retries), float(backoff), float(max_backoff), balance)
+        options: list[tuple[str, Any]] = [("grpc.max_receive_message_length", max_message_bytes),
+                                          ("grpc.max_send_message_length", max_message_bytes),
+                                          ("grpc.enable_retries", 1),
+                                          ("grpc.service_config", json.dumps(config)),
+                                          # ours, not one a DNS record could bring
+                                          ("grpc.service_config_disable_resolution", 1)]
         if server_name:
             options.append(("grpc.ssl_target_name_override", server_name))
         if tls_ca is not None or tls:
@@ -190,7 +243,6 @@ class Client:
             self.channel = grpc.insecure_channel(address, options)
         self.token, self.admin_token = token, admin_token
         self.timeout, self.solve_timeout = float(timeout), float(solve_timeout)
-        self.retries, self.backoff, self.max_backoff = int(retries), float(backoff), float(max_backoff)
         self._v = vgrpc.ValuationServiceStub(self.channel)
         self._a = agrpc.ModelAdminServiceStub(self.channel)
         self._h = health_pb2_grpc.HealthStub(self.channel)
@@ -210,20 +262,11 @@ class Client:
         return [("authorization", f"Bearer {tok}")] if tok else []
 
     def _call(self, fn, request, timeout: float | None, admin: bool = False):
-        deadline = time.monotonic() + (self.timeout if timeout is None else timeout)
-        attempt = 0
-        while True:
-            left = deadline - time.monotonic()
-            try:
-                return fn(request, timeout=max(left, 0.001), metadata=self._metadata(admin))
-            except grpc.RpcError as e:
-                if e.code() == grpc.StatusCode.UNAVAILABLE and attempt < self.retries:
-                    pause = min(self.max_backoff, self.backoff * 2 ** attempt) * random.uniform(0.5, 1.0)
-                    if time.monotonic() + pause < deadline:
-                        attempt += 1
-                        time.sleep(pause)
-                        continue
-                raise error_from(e) from None
+        """One call (the channel retries it on UNAVAILABLE within the deadline); a CallError."""
+        try:
+            return fn(request, timeout=self.timeout if timeout is None else timeout, metadata=self._metadata(admin))
+        except grpc.RpcError as e:
+            raise error_from(e) from None
 
     # ---- models ------------------------------------------------------------------------------
     def list_models(self, *, timeout: float | None = None) -> pb.ListModelsResponse:

@@ -14,12 +14,7 @@ from __future__ import annotations
 
 import importlib.util
 import json
-import os
 import shutil
-import signal
-import subprocess
-import sys
-import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -27,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from stateworth.clients.commands._common import CAUTION_LINE
+from stateworth.clients.harness import ServerProcess
 from stateworth.clients.tables import format_table, interval, money
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -98,72 +94,6 @@ class _Timer:
     def __exit__(self, *exc):
         if exc[0] is None:
             print(f"      done in {time.perf_counter() - self.t:.1f} s", flush=True)
-
-
-class Server:
-    """``stateworth serve`` in a subprocess on a free loopback port; waits for SERVING."""
-
-    def __init__(self, model_dir: Path, log_path: Path, timeout: float = 240.0) -> None:
-        cmd = [sys.executable, "-m", "stateworth", "serve", str(model_dir), "--port", "0", "--log-level", "info"]
-        env = dict(os.environ, PYTHONUNBUFFERED="1")
-        self.log = open(log_path, "w", encoding="utf-8")
-        self.proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env)
-        self.events: list[dict] = []
-        self._cv = threading.Condition()
-        self.timeout = timeout
-        threading.Thread(target=self._read, daemon=True).start()
-        self.port = int(self.wait_for("listening", timeout)["port"])
-
-    def wait_serving(self) -> float:
-        """Block until the server has loaded and solved its models; returns the seconds waited."""
-        t = time.perf_counter()
-        self.wait_for("serving", self.timeout)
-        return time.perf_counter() - t
-
-    def _read(self) -> None:
-        for line in self.proc.stderr:  # type: ignore[union-attr]
-            self.log.write(line)
-            self.log.flush()
-            with self._cv:
-                try:
-                    self.events.append(json.loads(line))
-                except ValueError:
-                    pass
-                self._cv.notify_all()
-        with self._cv:
-            self._cv.notify_all()
-
-    def wait_for(self, event: str, timeout: float) -> dict:
-        from stateworth.errors import StateworthError
-
-        end = time.monotonic() + timeout
-        with self._cv:
-            while True:
-                for ev in self.events:
-                    if ev.get("event") == event:
-                        return ev
-                if self.proc.poll() is not None:
-                    raise StateworthError(f"the server exited (status {self.proc.returncode}) before '{event}'; "
-                                          f"see {self.log.name}")
-                if time.monotonic() > end:
-                    raise StateworthError(f"the server did not report '{event}' within {timeout:.0f} s; "
-                                          f"see {self.log.name}")
-                self._cv.wait(0.5)
-
-    @property
-    def target(self) -> str:
-        return f"127.0.0.1:{self.port}"
-
-    def stop(self) -> int:
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-        try:
-            rc = self.proc.wait(60)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            rc = self.proc.wait()
-        self.log.close()
-        return rc
 
 
 def estimation_available() -> bool:
@@ -249,13 +179,13 @@ def run_demo(output: str | Path = "demo-out", spec: str | Path | None = None, ac
         # the server loads and solves its models in its own process while this one solves and
         # writes the report: on a small machine the two overlap instead of running in turn
         with step(f"start `stateworth serve {out / 'models'}` on a free loopback port"):
-            server = Server(out / "models", out / "server.log")
+            server = ServerProcess(out / "models", "--log-level", "info", wait="", log_path=out / "server.log")
             print(f"      listening on {server.target}; it loads and solves its models in the background "
                   f"(log: {out / 'server.log'})")
     try:
         with step("solve every reward stream (I - beta P) V = r"):
             valuer = load_valuer(str(model_dir), quiet=True)
-            s = valuer.solution.stats()
+            s = valuer.solve_stats
             print(f"      {valuer.model.n_states:,} states, {s['method']}: {s['status']}, {s['iterations']} iterations, "
                   f"residual {s['residual']:.1e}; {valuer.n_draws} posterior draws solved in one batch")
             summary["solve"] = s
@@ -279,7 +209,9 @@ def run_demo(output: str | Path = "demo-out", spec: str | Path | None = None, ac
             from stateworth.clients.client import Client
 
             with step("ask the server what a pricing system, a product team and an experiment read-out ask"):
-                waited = server.wait_serving()
+                t_wait = time.perf_counter()
+                server.wait_for("serving")
+                waited = time.perf_counter() - t_wait
                 print(f"      server serving (waited {waited:.0f} s for it to finish loading)")
                 with Client(server.target, timeout=60.0, solve_timeout=300.0) as client:
                     answers = questions.ask_server(client, sp, control_dir, treatment_dir)
@@ -398,8 +330,10 @@ class Questions:
               f"{self.product}; model tables: {source}):")
         print(format_table(["figure", "value", "90% interval", "meaning"], rows))
         print(f"\nreport: {page}")
-        print("  value by tenure per plan and market; acquisition by market beside the naive figures; plan")
-        print("  upgrades; ranked marginal transition values; fit diagnostics; solve statistics; assumptions.")
+        print("  value by tenure per plan and market; acquisition by market beside the naive figures and the")
+        print("  landing mix; plan upgrades; ranked marginal transition values; the long run; fit diagnostics;")
+        print("  solve statistics; assumptions. Its charts (report/charts/*.png, 200 dpi) carry the model")
+        print("  version, stream, unit and the caution, ready for a slide.")
         print(f"demo finished in {seconds:.0f} s.")
         print(CAUTION_LINE)
 

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from stateworth.rules.factors import Factor
-from stateworth.rules.counters import counter_flags
+from stateworth.rules.counters import counter_flags, counter_start  # noqa: F401  (counter_start re-exported)
 from stateworth.estimation.panel import Layout
 
 W = "PARTITION BY account ORDER BY p"
@@ -35,17 +35,6 @@ def _in(col: str, codes) -> str:
     return f"{col} IN ({', '.join(str(int(c)) for c in codes)})"
 
 
-def counter_start(spec, axis: str) -> int:
-    """The counter level a never-member is taken to hold before joining: the cap when the
-    counter advances for never-members (they have been one for a long time), else 0."""
-    ax = spec.axes[axis]
-    size = len(spec.axis_levels(axis))
-    aw = ax.advance_while if ax.advance_while is not None else "always"
-    nm = spec.non_members[0]
-    adv = aw in ("non_member", "always") or (isinstance(aw, list) and nm in aw)
-    return size - 1 if adv else 0
-
-
 def counter_sql(spec, lay: Layout, axis: str, s: str, sp: str) -> tuple[str, str]:
     """SQL for a counter's reset flag and advance flag of a row, from the previous status
     ``sp`` (NULL at an account's first row: then the never-member level) and the status ``s``.
@@ -53,7 +42,7 @@ def counter_sql(spec, lay: Layout, axis: str, s: str, sp: str) -> tuple[str, str
     With ``r`` the reset flags and ``a`` the advance flags along an account's history, the
     counter is ``min(cap, base + sum of a over the rows since the last reset, not counting reset
     rows)``, where base is :func:`counter_start` before any reset and 0 after; this equals
-    iterating :func:`stateworth.rules.operator.counter_index` row by row."""
+    iterating :func:`stateworth.rules.counters.counter_index` row by row."""
     ax = spec.axes[axis]
     st = spec.axis_levels(spec.status_axis)
     flags = spec.member_flags()

@@ -3,7 +3,9 @@
 Panel columns (CSV with a header row, or Parquet), one row per account per period:
 
 * ``account``: the account id (text or integer; personal data, never printed);
-* ``period``: ``YYYY-MM`` (monthly models);
+* ``period``: the period in the spec's ``model.period``: ``2024-01`` (month), ``2024-W05`` (ISO
+  week), ``2024-Q1`` (quarter), ``2024`` (year), or any date inside it (``2024-01-31``; a DATE or
+  TIMESTAMP column of a Parquet file), see :mod:`.periods`;
 * one column named for the status axis (e.g. ``status``) holding a level of it other than the
   never-member level (the first non-member level, e.g. ``prospect``: people who never joined
   do not appear in a panel);
@@ -13,22 +15,25 @@ Panel columns (CSV with a header row, or Parquet), one row per account per perio
   ``categorical``, at most :data:`MAX_CATEGORIES` distinct values);
 * optional ``revenue`` (money per period, a number >= 0).
 
-Counters (tenure, months since lapse) and cycles (calendar month) are *derived* from the
+Counters (tenure, periods since lapse) and cycles (calendar month) are *derived* from the
 history by :mod:`.counts`, never read from a column. Consecutive periods of an account are
 transitions; a gap in an account's history is an error (``gaps="error"``) or filled with the
 former-member level (``gaps="non_member"``; chance axes and covariates unknown there).
 
 Market-size table columns: ``market`` (levels of the spec's market axis: the fixed axis named
 ``market``, else the first fixed axis), ``size`` (addressable accounts), ``low`` and ``high``
-(a plausible range, ``low <= size <= high``), optional ``period`` (``YYYY-MM``; then one row per
-market and panel period).
+(a plausible range, ``low <= size <= high``), optional ``period`` (as in the panel; then one row
+per market and panel period). The market column may also be named after the market axis
+(``country`` for a fixed axis named country).
 
-Errors name the file, the data row (1-based, header not counted) and the column.
+Every table comes from a file or a database (:mod:`.sources`: a path, or a PostgreSQL URL with a
+table or query); the validation below reads either through the same DuckDB SQL. Errors name the
+file (or database and table), the data row (1-based, header not counted; for a CSV also the file
+line, row + 1) and the column.
 """
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Literal
@@ -36,15 +41,18 @@ from typing import Literal
 import numpy as np
 
 from stateworth.errors import PanelError
+# parse_period and period_label are imported from here by simulate and fit as well
+from stateworth.estimation.periods import index_sql, parse_period, period_label, period_problem
+from stateworth.estimation.sources import Column, TableSource, reader_error, relation, release
 from stateworth.rules.spec import Spec
 
 GapPolicy = Literal["error", "non_member"]
 GAP_POLICIES = ("error", "non_member")
-PERIOD_RE = r"^[0-9]{4}-(0[1-9]|1[0-2])$"
 #: Internal table names in the DuckDB connection.
 CODED = "coded"
 #: Distinct values a categorical covariate may take.
 MAX_CATEGORIES = 50
+CSV_SUFFIXES = (".csv", ".txt", ".tsv")
 
 
 @dataclass(frozen=True)
@@ -96,7 +104,7 @@ class Panel:
     """A validated, level-coded panel held in a DuckDB connection as table ``coded``.
 
     Columns of ``coded``: ``_row`` (data row in the file, 1-based; 0 for gap fill rows), ``account``,
-    ``p`` (period index ``12 * year + month - 1``), ``g<i>`` (level code of axis at grid position i,
+    ``p`` (period index, :mod:`.periods`: ``12 * year + month - 1`` for months), ``g<i>`` (level code of axis at grid position i,
     for observed axes), ``v<j>`` (covariates, DOUBLE; a categorical one as the index of its
     value in ``cov_levels``), ``revenue`` (DOUBLE or NULL), and the
     account-history columns of :func:`sequence_sql` (previous and next row), computed once in
@@ -114,27 +122,30 @@ class Panel:
     notes: list[str] = field(default_factory=list)
     cov_levels: dict[str, list[str]] = field(default_factory=dict)  # categorical covariate -> values
 
+    @property
+    def period(self) -> str:
+        """The spec's period kind (month, week, quarter, year)."""
+        return self.layout.spec.model.period
+
     def period_label(self, p: int) -> str:
-        return period_label(p)
+        return period_label(p, self.period)
 
 
-def period_label(p: int) -> str:
-    return f"{p // 12:04d}-{p % 12 + 1:02d}"
-
-
-def parse_period(text: str, where: str) -> int:
-    if not re.match(PERIOD_RE, text or ""):
-        # the value itself is not repeated: a misplaced column could hold account identifiers
-        raise PanelError("the period is not YYYY-MM (e.g. 2024-01)", where=where)
-    return int(text[:4]) * 12 + int(text[5:7]) - 1
+def row_where(path: str, row: int) -> str:
+    """``file: row R`` for a data row, with the file line too for a CSV (``row R (line R + 1)``:
+    the header is line 1)."""
+    if Path(path).suffix.lower() in CSV_SUFFIXES:
+        return f"{path}: row {row} (line {row + 1})"
+    return f"{path}: row {row}"
 
 
 def connect(threads: int | None = None):
     """An in-memory DuckDB connection. Insertion order is not preserved (sorts and window
     passes run about a third faster); every query whose order matters says ORDER BY, and a
     CSV's row numbers are fixed once when it is read (:func:`_source`)."""
-    import duckdb
+    from stateworth.extras import need
 
+    duckdb = need("duckdb", "fit", "reading a panel")
     con = duckdb.connect(":memory:")
     if threads:
         con.execute(f"SET threads = {int(threads)}")
@@ -142,33 +153,23 @@ def connect(threads: int | None = None):
     return con
 
 
-def _source(path: str, con) -> tuple[str, str]:
-    """A DuckDB relation text for a CSV/Parquet file, with a 1-based data row number ``_row``.
-    Parquet row numbers come from the reader; a CSV is read once into a temporary table with
-    insertion order preserved for that statement, so its row numbers are the file's."""
-    p = Path(path)
-    if not p.is_file():
-        raise PanelError("no such file; give the path to a CSV or Parquet file", where=str(path))
-    lit = "'" + str(p).replace("'", "''") + "'"
-    suffix = p.suffix.lower()
-    if suffix in (".parquet", ".pq"):
-        return f"(SELECT file_row_number + 1 AS _row, * EXCLUDE (file_row_number) FROM read_parquet({lit}, file_row_number = true))", "parquet"
-    if suffix in (".csv", ".txt", ".tsv"):
-        import duckdb
+def _source(path: str | Path | TableSource, con, columns: dict[str, Column] | None = None) -> tuple[str, str]:
+    """A DuckDB relation text with a 1-based data row number ``_row`` for a file or a database
+    table (:func:`.sources.relation`); ``columns`` are what a database source reads."""
+    return relation(path, con, columns)
 
-        name = f"_csv_{abs(hash(str(p.resolve()))) % 10 ** 12}"
-        order = con.execute("SELECT current_setting('preserve_insertion_order')").fetchone()[0]
-        con.execute("SET preserve_insertion_order = true")
-        try:
-            con.execute(f"CREATE OR REPLACE TEMP TABLE {name} AS SELECT row_number() OVER () AS _row, * "
-                        f"FROM read_csv({lit}, header = true, all_varchar = true)")
-        except duckdb.Error as e:
-            raise PanelError(f"cannot be read as CSV ({_reader_error(e)}); check the delimiter, the quoting and that "
-                             "every row has as many fields as the header row", where=str(path)) from None
-        finally:
-            con.execute(f"SET preserve_insertion_order = {'true' if order else 'false'}")
-        return name, "csv"
-    raise PanelError(f"unknown file type '{p.suffix}'; use .csv or .parquet", where=str(path))
+
+def panel_columns(lay: Layout) -> dict[str, Column]:
+    """The panel's columns and what each holds (what a database source reads and casts)."""
+    cols = {"account": Column("id"), "period": Column("period")}
+    cols.update({a: Column("level") for a in lay.observed})
+    cols.update({c: Column("level" if c in lay.categorical else "number") for c in lay.covariates})
+    cols["revenue"] = Column("number", required=False)
+    return cols
+
+
+MARKET_COLUMNS = {"market": Column("level"), "size": Column("number"), "low": Column("number"),
+                  "high": Column("number"), "period": Column("period", required=False)}
 
 
 def _columns(con, rel: str, path: str) -> dict[str, str]:
@@ -177,18 +178,8 @@ def _columns(con, rel: str, path: str) -> dict[str, str]:
     try:
         desc = con.execute(f"DESCRIBE SELECT * FROM {rel}").fetchall()
     except duckdb.Error as e:
-        raise PanelError(f"cannot be read as a table ({_reader_error(e)})", where=path) from None
+        raise PanelError(f"cannot be read as a table ({reader_error(e)})", where=path) from None
     return {r[0]: r[1] for r in desc}
-
-
-def _reader_error(e: Exception) -> str:
-    """What the file reader objected to, without its text: the engine quotes lines of the file,
-    which may hold account identifiers. Keeps the kind of error and the line number."""
-    text = str(e)
-    kind = text.split(":", 1)[0].strip() if ":" in text.splitlines()[0] else "unreadable"
-    line = re.search(r"\bline:?\s*(\d+)", text, flags=re.IGNORECASE)
-    why = "; the file is not UTF-8 text" if "utf-8" in text.lower() or "unicode" in text.lower() else ""
-    return f"{kind[:60]}" + (f" at line {line.group(1)}" if line else "") + why
 
 
 def _header_summary(have: list[str], expected: set[str]) -> str:
@@ -226,12 +217,13 @@ def _case_codes(col: str, levels: list[str]) -> str:
     return f"CASE CAST({col} AS VARCHAR) {whens} END"
 
 
-def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str]], object]:
+def panel_problems(spec: Spec, path: str | TableSource, con=None) -> tuple[list[tuple[str, str]], object]:
     """Validate a panel file against a spec. Returns ``([(where, message)], connection)``; the
     connection holds view ``raw`` (the file with ``_row``) when the columns were found."""
     con = con or connect()
     lay = Layout.of(spec)
-    rel, kind = _source(path, con)
+    rel, kind = _source(path, con, panel_columns(lay))
+    path = str(path)
     cols = _columns(con, rel, path)
     need = ["account", "period"] + list(lay.observed) + list(lay.covariates)
     missing = [c for c in need if c not in cols]
@@ -239,13 +231,13 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
         have = [c for c in cols if c != "_row"]
         expected = set(need) | {"revenue"}
         return [(path, f"missing required column(s) {', '.join(missing)}; {_header_summary(have, expected)} "
-                       f"(see README 'Panel format')")], con
+                       f"(see README 'Fitting from an account panel')")], con
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     probs: list[tuple[str, str]] = []
 
-    checks: list[tuple[str, str, str]] = []
+    checks: list[tuple[str, str, object]] = []
 
-    def example(cond: str, column: str, msg: str) -> None:
+    def example(cond: str, column: str, msg) -> None:
         checks.append((cond, column, msg))
 
     def run_checks() -> None:
@@ -256,57 +248,41 @@ def panel_problems(spec: Spec, path: str, con=None) -> tuple[list[tuple[str, str
         for (cond, column, msg), n in zip(checks, counts):
             if not n:
                 continue
-            # the row and column are named, the value never: it could be an account identifier
-            row = _first(con, f"SELECT _row FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
+            row = _first(con, f"SELECT _row, CAST({_q(column)} AS VARCHAR) FROM raw WHERE {cond} ORDER BY _row LIMIT 1")
             more = f" ({n:,} rows in all)" if n > 1 else ""
-            probs.append((f"{path}: row {row[0]}, column {column}", msg + more))
+            probs.append((f"{row_where(path, row[0])}, column {column}", msg(row[1]) + more))
         checks.clear()
 
     for c in ["account", "period"] + list(lay.observed):
-        example(f"{_q(c)} IS NULL", c, "empty value; every row needs one")
-    per = _period_text(cols)
-    example(f"{_q('period')} IS NOT NULL AND NOT regexp_matches({per}, '{PERIOD_RE}')", "period",
-            "the period is not YYYY-MM (e.g. 2024-01)")
+        example(f"{_q(c)} IS NULL", c, lambda v: "empty value; every row needs one")
+    kind = spec.model.period
+    example(f"{_q('period')} IS NOT NULL AND ({index_sql(_q('period'), cols['period'], kind)}) IS NULL", "period",
+            lambda v: period_problem(v, kind))
     for ax in lay.observed:
         lv = spec.axis_levels(ax)
         allowed = ", ".join(_lit(x) for x in lv)
         example(f"{_q(ax)} IS NOT NULL AND CAST({_q(ax)} AS VARCHAR) NOT IN ({allowed})", ax,
-                f"not a level of {ax}; levels are {', '.join(lv)}")
+                lambda v, ax=ax, lv=lv: f"not a level of {ax}; levels are {', '.join(lv)}")
     nm = lay.never_member
     example(f"CAST({_q(lay.status)} AS VARCHAR) = {_lit(nm)}", lay.status,
-            f"'{nm}' rows found: people who never joined do not appear in a panel (their joining "
-            f"comes from the market-size table); use a former-member level ({', '.join(lay.former_levels) or 'none declared'}) "
-            "for accounts that lapsed")
+            lambda v: f"'{nm}' rows found: people who never joined do not appear in a panel (their joining "
+                      f"comes from the market-size table); use a former-member level ({', '.join(lay.former_levels) or 'none declared'}) "
+                      "for accounts that lapsed")
     for c in lay.covariates:
         if c in lay.categorical:
             example(f"{_q(c)} IS NULL OR TRIM(CAST({_q(c)} AS VARCHAR)) = ''", c,
-                    "empty value; a categorical covariate needs a value on every row")
+                    lambda v: "empty value; a categorical covariate needs a value on every row")
             continue
         example(f"{_q(c)} IS NULL OR TRY_CAST({_q(c)} AS DOUBLE) IS NULL OR NOT isfinite(TRY_CAST({_q(c)} AS DOUBLE))", c,
-                "the covariate value is not a finite number")
+                lambda v: "the covariate value is not a finite number")
     if "revenue" in cols:
         example(f"{_q('revenue')} IS NOT NULL AND TRIM(CAST({_q('revenue')} AS VARCHAR)) <> '' AND "
                 f"TRY_CAST({_q('revenue')} AS DOUBLE) IS NULL", "revenue",
-                "revenue is not a number (money per period, e.g. 29.0)")
+                lambda v: "revenue is not a number (money per period, e.g. 29.0)")
         example(f"TRY_CAST({_q('revenue')} AS DOUBLE) < 0 OR NOT isfinite(TRY_CAST({_q('revenue')} AS DOUBLE))", "revenue",
-                "revenue is negative or not finite; revenue is money received, >= 0")
+                lambda v: "revenue is negative or not finite; revenue is money received, >= 0")
     run_checks()
     return probs, con
-
-
-def _period_text(cols: dict[str, str]) -> str:
-    """The period column as ``YYYY-MM`` text (a DATE or TIMESTAMP column is formatted)."""
-    ptype = cols["period"].upper()
-    if ptype.startswith("DATE") or ptype.startswith("TIMESTAMP"):
-        return f"strftime({_q('period')}, '%Y-%m')"
-    return f"CAST({_q('period')} AS VARCHAR)"
-
-
-def _period_index(cols: dict[str, str]) -> str:
-    """``12 * year + month - 1`` of a valid period, NULL otherwise."""
-    per = _period_text(cols)
-    return (f"CASE WHEN regexp_matches({per}, '{PERIOD_RE}') THEN CAST(substr({per}, 1, 4) AS INTEGER) * 12 "
-            f"+ CAST(substr({per}, 6, 2) AS INTEGER) - 1 END")
 
 
 def _coded_flags(con, lay: Layout, cols: dict[str, str]) -> bool:
@@ -359,12 +335,12 @@ def history_problems(con, lay: Layout, path: str) -> tuple[list[tuple[str, str]]
         row = _first(con, f"SELECT _row, p FROM {CODED} WHERE {cond} ORDER BY _row LIMIT 1")
         more = f" ({n:,} rows in all)" if n > 1 else ""
         if k == 0:
-            probs.append((f"{path}: row {row[0]}, columns account, period",
-                          f"a second row for the same account and period {period_label(row[1])}; one row per account "
-                          f"per period{more}"))
+            probs.append((f"{row_where(path, row[0])}, columns account, period",
+                          f"a second row for the same account and period {period_label(row[1], lay.spec.model.period)}; "
+                          f"one row per account per {lay.spec.model.period}{more}"))
         else:
             a = fixed[k - 1]
-            probs.append((f"{path}: row {row[0]}, column {a}",
+            probs.append((f"{row_where(path, row[0])}, column {a}",
                           f"{a} changes within an account's history; {a} is a fixed axis and never changes{more}"))
     return probs, bool(counts[-1])
 
@@ -374,24 +350,26 @@ def gap_example(con) -> tuple[int, int, int] | None:
     return _first(con, f"SELECT _row, _pp, p FROM {CODED} WHERE p - _pp > 1 ORDER BY _row LIMIT 1")
 
 
-def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) -> Panel:
+def load_panel(spec: Spec, path: str | Path | TableSource, *, gaps: GapPolicy = "error", con=None,
+               until: int | None = None) -> Panel:
     """Validate and code a panel (see the module docstring). Raises :class:`PanelError` naming
-    the file, row and column of the first problem (``problems`` lists all found)."""
+    the file, row and column of the first problem (``problems`` lists all found).
+
+    ``until``: keep only the periods up to and including this period index (the scale of
+    :attr:`Panel.p_min`), as if the file ended there: a backtest's calibration months. Rows
+    keep their file row numbers."""
     if gaps not in GAP_POLICIES:
         raise PanelError(f"unknown gap policy '{gaps}'; use one of {', '.join(GAP_POLICIES)}", where="gaps")
-    if spec.model.period != "month":
-        raise PanelError(f"panels are monthly (period YYYY-MM); the spec's model.period is '{spec.model.period}'",
-                         where="model.period")
-    path = str(path)
+    src, path = path, str(path)
     con = con or connect()
     lay = Layout.of(spec)
-    rel, _ = _source(path, con)
+    rel, _ = _source(src, con, panel_columns(lay))
     cols = _columns(con, rel, path)
     if any(c not in cols for c in ["account", "period"] + list(lay.observed) + list(lay.covariates)):
-        raise _panel_error(panel_problems(spec, path, con)[0])
+        raise _panel_error(panel_problems(spec, src, con)[0])
     con.execute(f"CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {rel}")
     # code first, validate on the codes: a clean file is read once, a bad one twice
-    sel = ["_row", "account", f"{_period_index(cols)} AS p"]
+    sel = ["_row", "account", f"{index_sql(_q('period'), cols['period'], spec.model.period)} AS p"]
     for ax in lay.observed:
         sel.append(f"{_case_codes(_q(ax), spec.axis_levels(ax))} AS {lay.col(ax)}")
     cov_levels = {c: _categories(con, c, path) for c in lay.categorical}
@@ -403,10 +381,13 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
     has_rev = "revenue" in cols
     sel.append(f"TRY_CAST({_q('revenue')} AS DOUBLE) AS revenue" if has_rev else "CAST(NULL AS DOUBLE) AS revenue")
     base = [x.rsplit(" AS ", 1)[-1] for x in sel]
-    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS "
-                + sequence_sql(lay, f"(SELECT {', '.join(sel)} FROM raw) c", base))
+    coded = f"(SELECT {', '.join(sel)} FROM raw) c"
+    if until is not None:
+        # rows with an unreadable period stay, so that validation still reports them
+        coded = f"(SELECT * FROM {coded} WHERE p IS NULL OR p <= {int(until)}) c"
+    con.execute(f"CREATE OR REPLACE TEMP TABLE {CODED} AS " + sequence_sql(lay, coded, base))
     if _coded_flags(con, lay, cols):
-        probs, _ = panel_problems(spec, path, con)
+        probs, _ = panel_problems(spec, src, con)
         if not probs:  # pragma: no cover - the two checks disagree: a bug, not bad input
             raise RuntimeError("panel flagged by the coded scan but no detailed problem found")
         raise _panel_error(probs)
@@ -416,19 +397,23 @@ def load_panel(spec: Spec, path: str, *, gaps: GapPolicy = "error", con=None) ->
         raise _panel_error(hist)
     gap = gap_example(con) if has_gaps else None
     if gap is not None:
+        kind = spec.model.period
         if gaps == "error":
-            raise PanelError(f"a gap in the account's history: no row for {period_label(gap[1] + 1)}"
-                             f"{'..' + period_label(gap[2] - 1) if gap[2] - gap[1] > 2 else ''} before "
-                             f"{period_label(gap[2])}; add the missing months or fit with gaps = non_member "
-                             "(a gap is then a former-member period)", where=f"{path}: row {gap[0]}, column period")
+            raise PanelError(f"a gap in the account's history: no row for {period_label(gap[1] + 1, kind)}"
+                             f"{'..' + period_label(gap[2] - 1, kind) if gap[2] - gap[1] > 2 else ''} before "
+                             f"{period_label(gap[2], kind)}; add the missing {kind}s or fit with --gaps non_member "
+                             "(a gap is then a former-member period)", where=f"{row_where(path, gap[0])}, column period")
         if not lay.former_levels:
             raise PanelError("gaps cannot be filled as non-member periods: the status axis has no former-member "
-                             "level", where=f"{path}: row {gap[0]}, column period")
+                             "level", where=f"{row_where(path, gap[0])}, column period")
         filled = fill_gaps(con, lay, base)
     n, acc, pmin, pmax = _first(con, f"SELECT count(*), count_if(_pp IS NULL), min(p), max(p) FROM {CODED}")
     if not n:
-        raise PanelError("the panel has no data rows (a header row only, or an empty file); give one row per "
-                         "account per month", where=path)
+        raise PanelError("the panel has no data rows (a header row only, or an empty file); give at least one "
+                         "row per account and period", where=path)
+    # every check has passed: only ``coded`` is read from here on
+    con.execute("DROP VIEW raw")
+    release(con, rel)
     return Panel(con=con, layout=lay, path=path, rows=int(n), accounts=int(acc), p_min=int(pmin),
                  p_max=int(pmax), filled=filled, has_revenue=has_rev, cov_levels=cov_levels)
 
@@ -494,32 +479,37 @@ class MarketSizes:
     low: np.ndarray
     high: np.ndarray
     by_period: bool
+    listed: np.ndarray | None = None  # (M,) bool: the market has a row in the table
 
 
-def load_markets(spec: Spec, path: str, panel: Panel) -> MarketSizes:
+def load_markets(spec: Spec, path: str | Path | TableSource, panel: Panel) -> MarketSizes:
     """Read and validate the market-size table against the spec and the coded panel."""
-    probs = market_problems(spec, str(path), panel)
+    probs = market_problems(spec, path, panel)
     if isinstance(probs, MarketSizes):
         return probs
     raise _panel_error(probs)
 
 
-def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]] | MarketSizes:
+def market_problems(spec: Spec, path: str | TableSource, panel: Panel) -> list[tuple[str, str]] | MarketSizes:
     con, lay = panel.con, panel.layout
+    src, path = path, str(path)
     if lay.market is None:
         return [(path, "the spec declares no fixed axis; a market-size table needs a market axis "
                        "(kind = \"fixed\", named market)")]
-    rel, _ = _source(path, con)
+    rel, _ = _source(src, con, MARKET_COLUMNS)
     cols = _columns(con, rel, path)
-    missing = [c for c in ("market", "size", "low", "high") if c not in cols]
+    # the market column is named `market`, or after the market axis itself (`country`)
+    mcol = lay.market if lay.market in cols else "market"
+    named = "market" if lay.market == "market" else f"{lay.market} (or market)"
+    missing = [c if c != "market" else named for c in (mcol, "size", "low", "high") if c not in cols]
     if missing:
-        have = [c for c in cols if c != "_row"]
-        return [(path, f"missing required column(s) {', '.join(missing)}; columns are market, size, low, high "
-                       f"and optionally period; {_header_summary(have, {'market', 'size', 'low', 'high', 'period'})}")]
+        return [(path, f"missing required column(s) {', '.join(missing)}; columns are {named}, size, low, high "
+                       "and optionally period")]
     con.execute(f"CREATE OR REPLACE TEMP VIEW mraw AS SELECT * FROM {rel}")
     by_period = "period" in cols
-    rows = con.execute("SELECT _row, CAST(market AS VARCHAR), CAST(size AS VARCHAR), CAST(low AS VARCHAR), "
+    rows = con.execute(f"SELECT _row, CAST({_q(mcol)} AS VARCHAR), CAST(size AS VARCHAR), CAST(low AS VARCHAR), "
                        f"CAST(high AS VARCHAR), {'CAST(period AS VARCHAR)' if by_period else 'NULL'} FROM mraw ORDER BY _row").fetchall()
+    kind = spec.model.period
     levels = spec.axis_levels(lay.market)
     T = panel.p_max - panel.p_min + 1
     M = len(levels)
@@ -528,9 +518,9 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     high = np.full((M, T), np.nan)
     probs: list[tuple[str, str]] = []
     for r, mk, *vals, per in rows:
-        where = f"{path}: row {r}"
+        where = row_where(path, r)
         if mk not in levels:
-            probs.append((f"{where}, column market", f"not a level of {lay.market}; levels are {', '.join(levels)}"))
+            probs.append((f"{where}, column {mcol}", f"not a level of {lay.market}; levels are {', '.join(levels)}"))
             continue
         nums = []
         for name, v in zip(("size", "low", "high"), vals):
@@ -549,7 +539,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
             continue
         if by_period:
             try:
-                t = parse_period(per, f"{where}, column period") - panel.p_min
+                t = parse_period(per, f"{where}, column period", kind) - panel.p_min
             except PanelError as e:
                 probs.append((e.where, e.message))
                 continue
@@ -560,7 +550,7 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
             ts = list(range(T))
         i = levels.index(mk)
         if not np.isnan(size[i, ts[0]]):
-            probs.append((f"{where}, column market", f"a second row for market '{mk}'"
+            probs.append((f"{where}, column {mcol}", f"a second row for market '{mk}'"
                           + (f" and period {per}" if by_period else "")))
             continue
         size[i, ts], low[i, ts], high[i, ts] = s, lo, hi
@@ -570,12 +560,12 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
     for code, pmin in seen:
         t = int(pmin) - panel.p_min
         if np.isnan(size[code]).all():
-            probs.append((f"{path}, column market", f"market '{levels[code]}' appears in the panel ({panel.path}) but "
+            probs.append((f"{path}, column {mcol}", f"market '{levels[code]}' appears in the panel ({panel.path}) but "
                           "has no row in the size table; add its addressable size"))
         elif np.isnan(size[code, t:]).any():
             bad = t + int(np.argmax(np.isnan(size[code, t:])))
             probs.append((f"{path}, column period", f"no size for market '{levels[code]}' in period "
-                          f"{period_label(panel.p_min + bad)}, which the panel covers"))
+                          f"{period_label(panel.p_min + bad, kind)}, which the panel covers"))
     if probs:
         return probs
     # tracked accounts by market and period must fit inside the addressable size
@@ -590,25 +580,29 @@ def market_problems(spec: Spec, path: str, panel: Panel) -> list[tuple[str, str]
         if over.any():
             i, t = np.argwhere(over)[0]
             probs.append((f"{path}, column {which}", f"market '{levels[i]}' has {which} {arr[i, t]:g} but the panel already "
-                          f"tracks {int(tracked[i, t]):,} accounts there by {period_label(panel.p_min + t)}; the addressable "
+                          f"tracks {int(tracked[i, t]):,} accounts there by {period_label(panel.p_min + t, kind)}; the addressable "
                           "size counts every account that could join, members and former members included"))
     if probs:
         return probs
     fill = lambda a: np.where(np.isnan(a), 0.0, a)  # noqa: E731 - markets absent from the panel
-    return MarketSizes(lay.market, fill(size), fill(low), fill(high), by_period)
+    return MarketSizes(lay.market, fill(size), fill(low), fill(high), by_period, ~np.isnan(size).all(axis=1))
 
 
-def check_panel(spec: Spec, panel_path: str, markets_path: str | None, *, gaps: GapPolicy = "error") -> list[str]:
-    """Every problem found in a panel (and its market-size table) against a spec, as
-    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine)."""
+def check_panel(spec: Spec, panel_path: str | TableSource, markets_path: str | TableSource | None, *,
+                gaps: GapPolicy = "error") -> list[str]:
+    """The problems found reading a panel (and its market-size table) against a spec, as
+    ``"file: row R, column C: what is wrong and what would be right"`` lines (empty = fine).
+    The checks a fit adds on top (forbidden moves and joins, the propensity score, the join
+    hazard's at-risk counts) are in :func:`stateworth.estimation.fit.check_fit_inputs`, which
+    ``stateworth check --panel`` runs."""
     try:
-        panel = load_panel(spec, str(panel_path), gaps=gaps)
+        panel = load_panel(spec, panel_path, gaps=gaps)
     except PanelError as e:
         return list(getattr(e, "problems", [str(e)]))
     if markets_path is None:
         return []
     try:
-        res = market_problems(spec, str(markets_path), panel)
+        res = market_problems(spec, markets_path, panel)
     except PanelError as e:
         return [str(e)]
     return [] if isinstance(res, MarketSizes) else [f"{w}: {m}" for w, m in res]

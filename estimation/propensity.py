@@ -70,7 +70,7 @@ def _newton(X, y, max_iter, tol):
 def fit_logit(x: np.ndarray, y: np.ndarray, names: tuple[str, ...] = (), *, max_iter: int = 50,
               tol: float = 1e-10, where: str = "propensity") -> LogitFit:
     """Logistic regression of ``y`` (0/1, shape (n,)) on ``x`` (n, k) with an intercept."""
-    config.float64()
+    config.use_jax()
     x = np.asarray(x, dtype=np.float64)
     y = np.asarray(y, dtype=np.float64)
     if x.ndim != 2 or len(x) != len(y):

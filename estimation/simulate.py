@@ -35,6 +35,8 @@ from stateworth.rules.counters import counter_index
 from stateworth.estimation.panel import Layout, parse_period, period_label
 
 COVARIATE_NOISE = 0.15
+#: The first simulated period unless told: the period of the spec's kind that holds this date.
+DEFAULT_START = "2024-01-01"
 #: Classes of a simulated categorical covariate and the cuts of the underlying measurement.
 CATEGORY_NAMES = ["low", "mid", "high", "top"]
 CATEGORY_EDGES = [-0.75, 0.0, 0.75]
@@ -48,6 +50,7 @@ class Simulation:
     markets: object
     truth: dict[str, np.ndarray]
     population: dict[str, int]
+    sample: object = None  # pyarrow Table: a sample of the addressable population (market, covariates)
 
 
 def _draw(rng: np.random.Generator, probs: np.ndarray) -> np.ndarray:
@@ -58,10 +61,27 @@ def _draw(rng: np.random.Generator, probs: np.ndarray) -> np.ndarray:
     return out.astype(np.int64)
 
 
-def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start: str = "2024-01",
-                   tables: dict[str, np.ndarray] | None = None) -> Simulation:
-    """Simulate ``periods`` months of ``population`` addressable people (see the module doc)."""
-    import pyarrow as pa
+def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start: str | None = None,
+                   tables: dict[str, np.ndarray] | None = None, sample: int = 0,
+                   band_shares: np.ndarray | None = None,
+                   later: tuple[int, dict[str, np.ndarray]] | None = None) -> Simulation:
+    """Simulate ``periods`` periods of the spec (months, ISO weeks, quarters or years) of
+    ``population`` addressable people (see the module doc). ``start``: the first panel period,
+    a label of the spec's period or a date in it (default: the first period of 2024); the
+    panel's ``period`` column holds the spec's labels (``2024-01``, ``2024-W01``, ``2024-Q1``,
+    ``2024``).
+
+    ``sample`` > 0 (a spec with a propensity band axis) also draws that many people at random
+    from the whole addressable population, members and never-members alike, with their market
+    and their covariates measured at the last period as the panel measures them: what a survey
+    of the market would give (``Simulation.sample``). ``band_shares``: the start distribution
+    of a propensity band axis (default even).
+
+    ``later = (t, tables)``: from the move into panel period ``t`` (0-based) on, the given
+    factors are drawn from these tables instead: a world that changes (for backtests)."""
+    from stateworth.extras import need
+
+    pa = need("pyarrow", "fit", "simulating a panel")
 
     if population < 1 or periods < 2:
         raise SpecError("simulate needs at least 1 person and 2 periods", where="--accounts/--periods")
@@ -74,15 +94,17 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
                                 else table_from_rows(spec, f), dtype=np.float64) for f in factors}
     grid = spec.grid_order
     st = spec.status_axis
-    st_levels = spec.axis_levels(st)
     nm = lay.code(st, lay.never_member)
-    p0 = parse_period(start, "--start")
+    period = spec.model.period
+    p0 = parse_period(start if start is not None else DEFAULT_START, "--start", period)
     N = int(population)
     cur: dict[str, np.ndarray] = {}
     for a in grid:
         kind = spec.axes[a].kind
         size = len(spec.axis_levels(a))
-        if kind == "fixed" or a == lay.band:
+        if a == lay.band and band_shares is not None:
+            cur[a] = rng.choice(size, size=N, p=np.asarray(band_shares, dtype=np.float64))
+        elif kind == "fixed" or a == lay.band:
             cur[a] = rng.integers(0, size, N)
         elif kind == "counter":
             cur[a] = np.full(N, counter_start(spec, a), dtype=np.int64)
@@ -96,11 +118,13 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
     joined = np.zeros(N, dtype=bool)
     price = _prices(spec)
     chunks: list[dict[str, np.ndarray]] = []
+    changed = {**truth, **{a: np.asarray(v, dtype=np.float64) for a, v in later[1].items()}} if later else truth
     for t in range(periods):
         nxt: dict[str, np.ndarray] = {}
+        now = changed if later and t >= later[0] else truth
         for f in factors:
             idx = [nxt[g[5:]] if g.startswith("next.") else cur[g] for g in f.given]
-            T = truth[f.axis]
+            T = now[f.axis]
             flat = np.ravel_multi_index(idx, f.shape[:-1]) if idx else np.zeros(N, dtype=np.int64)
             nxt[f.axis] = _draw(rng, T.reshape(-1, f.shape[-1])[flat])
         for a in grid:
@@ -122,26 +146,17 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
         row["revenue"] = price[cur[st][who], cur[lay.market][who]]
         chunks.append(row)
     cols = {k: np.concatenate([c[k] for c in chunks]) for k in chunks[0]}
-    n = len(cols["account"])
     arrays = {"account": pa.array(cols["account"]),
               "period": pa.DictionaryArray.from_arrays(
                   pa.array((cols["p"] - p0).astype(np.int32)),
-                  pa.array([period_label(p0 + t) for t in range(periods)]))}
+                  pa.array([period_label(p0 + t, period) for t in range(periods)]))}
     for a in lay.observed:
         arrays[a] = pa.DictionaryArray.from_arrays(pa.array(cols[a].astype(np.int32)), pa.array(spec.axis_levels(a)))
+    noise = None
     if lay.band:
-        B = len(spec.axis_levels(lay.band))
-        centre = cols["_band"] - (B - 1) / 2.0
         # a person's measurement error is their own and lasts (age, distance do not jitter monthly)
         noise = rng.standard_normal((N, len(lay.covariates)))
-        for j, c in enumerate(lay.covariates):
-            x = (-1) ** j * centre + COVARIATE_NOISE * noise[cols["account"], j]
-            if c in lay.categorical:
-                # the same measurement, reported in coarse named classes
-                code = np.digitize(x, CATEGORY_EDGES)
-                arrays[c] = pa.DictionaryArray.from_arrays(pa.array(code.astype(np.int32)), pa.array(CATEGORY_NAMES))
-            else:
-                arrays[c] = pa.array(x)
+        arrays.update(_measure(spec, lay, cols["_band"], noise[cols["account"]]))
     arrays["revenue"] = pa.array(cols["revenue"])
     panel = pa.table(arrays)
     m_levels = spec.axis_levels(lay.market)
@@ -150,8 +165,36 @@ def simulate_panel(spec, population: int, periods: int, seed: int = 0, *, start:
     low = np.maximum(np.floor(0.9 * pop), tracked).astype(np.int64)
     high = np.ceil(1.1 * pop).astype(np.int64)
     markets = pa.table({"market": m_levels, "size": pop.astype(np.int64), "low": low, "high": high})
+    sampled = None
+    if sample > 0:
+        if noise is None:
+            raise SpecError("a population sample measures the covariates of a propensity band axis, and the spec "
+                            "declares none", where="--population-sample")
+        # drawn after everything else, so the panel of a seed is the same with or without it
+        who = np.sort(rng.choice(N, size=min(int(sample), N), replace=False))
+        sampled = pa.table({"market": pa.array([m_levels[i] for i in cur[lay.market][who]]),
+                            **_measure(spec, lay, cur[lay.band][who], noise[who])})
     return Simulation(panel=panel, markets=markets, truth=truth,
-                      population={lv: int(x) for lv, x in zip(m_levels, pop)})
+                      population={lv: int(x) for lv, x in zip(m_levels, pop)}, sample=sampled)
+
+
+def _measure(spec, lay: Layout, band: np.ndarray, noise: np.ndarray) -> dict:
+    """The covariate columns (pyarrow arrays) measuring ``band`` with each row's ``noise``
+    ``(rows, covariates)``: covariate j is ``(-1)^j (band - (B - 1) / 2) + 0.15 z_j``."""
+    import pyarrow as pa
+
+    B = len(spec.axis_levels(lay.band))
+    centre = band - (B - 1) / 2.0
+    out = {}
+    for j, c in enumerate(lay.covariates):
+        x = (-1) ** j * centre + COVARIATE_NOISE * noise[:, j]
+        if c in lay.categorical:
+            # the same measurement, reported in coarse named classes
+            code = np.digitize(x, CATEGORY_EDGES)
+            out[c] = pa.DictionaryArray.from_arrays(pa.array(code.astype(np.int32)), pa.array(CATEGORY_NAMES))
+        else:
+            out[c] = pa.array(x)
+    return out
 
 
 def _prices(spec) -> np.ndarray:
@@ -199,8 +242,17 @@ def write_table(table, path: str | Path) -> Path:
     return path
 
 
+def population_path_for(panel_path: str | Path) -> Path:
+    """Where :func:`write_simulation` puts a population sample: ``<panel stem>.population.csv``."""
+    return markets_path_for(panel_path).with_name(markets_path_for(panel_path).name.replace(".markets.csv",
+                                                                                          ".population.csv"))
+
+
 def write_simulation(sim: Simulation, panel_path: str | Path) -> tuple[Path, Path]:
-    """Write the panel to ``panel_path`` and the market-size table beside it (CSV)."""
+    """Write the panel to ``panel_path``, the market-size table beside it (CSV) and, when the
+    simulation drew one, the population sample (:func:`population_path_for`)."""
     p = write_table(sim.panel, panel_path)
     m = write_table(sim.markets, markets_path_for(panel_path))
+    if sim.sample is not None:
+        write_table(sim.sample, population_path_for(panel_path))
     return p, m

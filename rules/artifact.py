@@ -46,7 +46,7 @@ import time
 import zipfile
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any, Callable, Iterator
 
 import numpy as np
 
@@ -432,13 +432,16 @@ def _json_bytes(doc: Any) -> bytes:
 
 
 def _write_version(d: Path, arrays: dict[str, np.ndarray], manifest: dict, files: dict[str, Any],
-                   texts: dict[str, str]) -> None:
-    """Fill version directory ``d``: arrays, side files, and the manifest last."""
+                   texts: dict[str, str], before_publish: Callable[[Path], None] | None = None) -> None:
+    """Fill version directory ``d``: arrays, side files, ``before_publish(d)``'s additions, and
+    the manifest last."""
     _write_file(d / ARRAYS, arrays=arrays)
     for fname, doc in files.items():
         _write_file(d / fname, _json_bytes(doc))
     for fname, text in texts.items():
         _write_file(d / fname, text.encode("utf-8"))
+    if before_publish is not None:
+        before_publish(d)
     # not sort_keys: the order of the spec's axes is meaningful (grid order, draw order)
     _write_file(d / MANIFEST, json.dumps(manifest, indent=2).encode())
     _fsync_dir(d)
@@ -540,13 +543,16 @@ def _publish(folder: Path, staged: Path, name: str) -> str:
 
 
 def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarray] | None = None,
-               files: dict[str, Any] | None = None, texts: dict[str, str] | None = None) -> Path:
+               files: dict[str, Any] | None = None, texts: dict[str, str] | None = None,
+               before_publish: Callable[[Path], None] | None = None) -> Path:
     """Write ``model`` as the new current version of model folder ``path`` (see the module
     docstring); returns ``path``.
 
     ``extra`` arrays are stored beside the tables (e.g. sensitivity tables); ``files`` are extra
     JSON documents (e.g. ``diagnostics.json``), ``texts`` extra text files (``diagnostics.txt``):
-    all written before the version is published. When the current version already holds the
+    all written before the version is published. ``before_publish(d)`` may add more to version
+    directory ``d`` (stored solved values) before it is published (before its manifest is
+    written). When the current version already holds the
     same manifest (same model, arrays and metadata), it stays, with everything stored in it, and
     only side files that differ are rewritten (each atomically). ``path`` may be new, empty, a
     model folder of either layout; anything else is refused rather than overwritten."""
@@ -572,7 +578,7 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
         "n_states": model.n_states,
         "grid": model.grid.describe(),
         "factors": [{"axis": f.axis, "given": list(f.given), "shape": list(f.shape)} for f in model.factors],
-        "streams": list(model.rewards),
+        "streams": list(model.streams),
         "metadata": model.metadata,
         "arrays": {k: {"shape": list(v.shape), "dtype": str(v.dtype), "sha256": _sha(v)} for k, v in arrays.items()},
     }
@@ -591,6 +597,8 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
                     _rewrite_if_changed(d / fname, _json_bytes(doc))
                 for fname, text in texts.items():
                     _rewrite_if_changed(d / fname, text.encode("utf-8"))
+                if before_publish is not None:
+                    before_publish(d)
                 return path
     name = f"{model.version}-{_stamp()}"
     if not is_model_dir(path):
@@ -598,7 +606,7 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
         with _writing_dir(path.parent, f".{path.name}.tmp-") as tmp:
             vdir = tmp / VERSIONS / name
             vdir.mkdir(parents=True)
-            _write_version(vdir, arrays, manifest, files, texts)
+            _write_version(vdir, arrays, manifest, files, texts, before_publish)
             os.symlink(f"{VERSIONS}/{name}", tmp / CURRENT)
             _fsync_dir(tmp / VERSIONS)
             _fsync_dir(tmp)
@@ -615,7 +623,7 @@ def save_model(model: CompiledModel, path: str | Path, extra: dict[str, np.ndarr
                 _fsync_dir(path.parent)
         return path
     with _writing_dir(path / VERSIONS, ".tmp-") as staged:
-        _write_version(staged, arrays, manifest, files, texts)
+        _write_version(staged, arrays, manifest, files, texts, before_publish)
         _publish(path, staged, name)
     return path
 

@@ -1,16 +1,17 @@
 """Compilation: spec + factor tables -> :class:`CompiledModel`.
 
 A compiled model is everything the solver and the valuation queries need: the grid and its level
-index, the structured operator P (apply and transpose), one reward vector per stream, the
-per-period discount factor, metadata and a content hash that identifies it (spec + tables).
+index, the structured operator P (apply and transpose, built on first use), one reward vector per
+stream, the per-period discount factor, metadata and a content hash that identifies it (spec +
+tables). Compiling validates the tables and hashes them; it imports neither JAX nor scipy.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import dataclass, field
-from typing import Any, Mapping
+import threading
+from typing import TYPE_CHECKING, Any, Mapping
 
 import numpy as np
 
@@ -18,9 +19,11 @@ from stateworth import config
 from stateworth.errors import GridTooLargeError, SpecError
 from stateworth.rules.factors import Factor, check_table, factors_of, row_of_cells, table_from_rows
 from stateworth.rules.grid import Grid
-from stateworth.rules.operator import GridOperator, explicit_csr, make_operator
 from stateworth.rules.rewards import reward_vector
 from stateworth.rules.spec import Spec
+
+if TYPE_CHECKING:
+    from stateworth.rules.grid_operator import GridOperator
 
 FORMAT = "stateworth.compiled/1"
 
@@ -47,20 +50,70 @@ def check_size(spec: Spec, source: str = "<spec>", limit: int | None = None) -> 
             f"{limit / 1024**3:.1f} GB; shrink an axis or raise STATEWORTH_MEMORY_LIMIT_GB", where=source)
 
 
-@dataclass
 class CompiledModel:
-    """A model ready to solve. ``rewards[k]`` is ``(n,)`` in money per period (see rewards.py)."""
+    """A model ready to solve: spec, grid, factor tables (``tables[axis]`` of the factor's shape:
+    given sizes..., axis size), the per-period discount factor ``beta`` and the content ``hash``.
 
-    spec: Spec
-    grid: Grid
-    factors: list[Factor]
-    tables: dict[str, np.ndarray]
-    operator: GridOperator
-    rewards: dict[str, np.ndarray]
-    beta: float
-    hash: str
-    metadata: dict[str, Any] = field(default_factory=dict)
-    draws: dict[str, np.ndarray] = field(default_factory=dict)  # axis -> (D, *table shape)
+    Built on first use and kept (thread-safe): ``operator``, the structured P (imports JAX);
+    ``rewards``, one ``(n,)`` vector per stream in money per period (member-months for
+    ``member_months``), computed from the tables without the operator (see rules/rewards.py);
+    ``csr()``, P as a scipy matrix. Loading a model and looking up stored values therefore never
+    touches JAX."""
+
+    def __init__(self, spec: Spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray], beta: float,
+                 hash: str, metadata: dict[str, Any] | None = None, draws: dict[str, np.ndarray] | None = None,
+                 operator: "GridOperator | None" = None, rewards: dict[str, np.ndarray] | None = None,
+                 reuse_plan: bool = False) -> None:
+        self.spec = spec
+        self.grid = grid
+        self.factors = factors
+        self.tables = tables
+        self.beta = float(beta)
+        self.hash = hash
+        self.metadata = dict(metadata or {})
+        self.draws = dict(draws or {})  # axis -> (D, *table shape)
+        self._operator = operator
+        self._rewards = None if rewards is None else dict(rewards)
+        self._csr = None
+        self._lock = threading.Lock()
+        #: build the operator's plan through the small cache of recent plans (sub-models of one
+        #: spec, built again and again by transition changes)
+        self.reuse_plan = bool(reuse_plan)
+
+    def replace(self, **changes: Any) -> "CompiledModel":
+        """A copy with some attributes replaced (``operator`` and ``rewards`` rebuilt on use unless
+        given)."""
+        kw = {"spec": self.spec, "grid": self.grid, "factors": self.factors, "tables": self.tables,
+              "beta": self.beta, "hash": self.hash, "metadata": self.metadata, "draws": self.draws}
+        kw.update(changes)
+        return CompiledModel(**kw)
+
+    @property
+    def operator(self) -> "GridOperator":
+        if self._operator is None:
+            with self._lock:
+                if self._operator is None:
+                    from stateworth.rules.grid_operator import make_operator
+                    self._operator = make_operator(self.spec, self.grid, self.factors, self.tables,
+                                                   reuse_plan=self.reuse_plan)
+        return self._operator
+
+    @property
+    def rewards(self) -> dict[str, np.ndarray]:
+        if self._rewards is None:
+            with self._lock:
+                if self._rewards is None:
+                    out = {name: reward_vector(self.spec, self.grid, self.factors, self.tables,
+                                               self.spec.rewards[name], self.beta) for name in self.spec.rewards}
+                    out["member_months"] = reward_vector(self.spec, self.grid, self.factors, self.tables, None,
+                                                         self.beta)
+                    self._rewards = out
+        return self._rewards
+
+    @property
+    def streams(self) -> tuple[str, ...]:
+        """Reward stream names: the spec's, then ``member_months``."""
+        return tuple(self.spec.rewards) + ("member_months",)
 
     @property
     def name(self) -> str:
@@ -83,15 +136,20 @@ class CompiledModel:
         return "member-months" if stream == "member_months" else self.currency
 
     def reward(self, stream: str) -> np.ndarray:
-        if stream not in self.rewards:
+        if stream not in self.streams:
             from stateworth.errors import QueryError
-            raise QueryError(f"unknown reward stream '{stream}'; streams are {', '.join(self.rewards)}",
+            raise QueryError(f"unknown reward stream '{stream}'; streams are {', '.join(self.streams)}",
                              field="stream")
         return self.rewards[stream]
 
     def csr(self):
         """P as a scipy CSR matrix (small and medium grids; references and cross-checks)."""
-        return explicit_csr(self.spec, self.grid, self.factors, self.tables)
+        if self._csr is None:
+            with self._lock:
+                if self._csr is None:
+                    from stateworth.rules.explicit import explicit_csr
+                    self._csr = explicit_csr(self.spec, self.grid, self.factors, self.tables)
+        return self._csr
 
     def with_tables(self, tables: Mapping[str, np.ndarray], check: bool = True) -> "CompiledModel":
         """A model with some factor tables replaced (re-validated, rewards and hash recomputed)."""
@@ -132,11 +190,6 @@ def compile_model(spec: Spec, tables: Mapping[str, np.ndarray] | None = None, *,
         rows = row_of_cells(spec, f) if written else None
         final[f.axis] = check_table(spec, f, t, where, rows) if check else np.asarray(t, dtype=np.float64)
     grid = Grid.from_spec(spec)
-    op = make_operator(spec, grid, factors, final)
-    beta = spec.beta
-    rewards = {name: reward_vector(spec, grid, op, spec.rewards[name], beta) for name in spec.rewards}
-    rewards["member_months"] = reward_vector(spec, grid, op, None, beta)
-    return CompiledModel(spec=spec, grid=grid, factors=factors, tables=final, operator=op,
-                         rewards=rewards, beta=beta, hash=content_hash(spec, final),
-                         metadata=dict(metadata or {}),
+    return CompiledModel(spec=spec, grid=grid, factors=factors, tables=final, beta=spec.beta,
+                         hash=content_hash(spec, final), metadata=dict(metadata or {}),
                          draws={k: np.asarray(v, dtype=np.float64) for k, v in (draws or {}).items()})

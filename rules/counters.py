@@ -54,3 +54,14 @@ def counter_index(spec, axis: str) -> np.ndarray:
     nxt = np.broadcast_to(nxt, (size, S, S)).astype(np.int32)
     nxt[:, reset] = 0
     return nxt
+
+
+def counter_start(spec, axis: str) -> int:
+    """The counter level a never-member is taken to hold before joining: the cap when the
+    counter advances for never-members (they have been one for a long time), else 0."""
+    ax = spec.axes[axis]
+    size = len(spec.axis_levels(axis))
+    aw = ax.advance_while if ax.advance_while is not None else "always"
+    nm = spec.non_members[0]
+    adv = aw in ("non_member", "always") or (isinstance(aw, list) and nm in aw)
+    return size - 1 if adv else 0

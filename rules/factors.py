@@ -74,6 +74,33 @@ def move_mask(spec: Spec, axis: str) -> tuple[tuple[str, ...], np.ndarray]:
     return tuple(dims) + (f"{axis}'",), mask
 
 
+def plans_without_way_in(spec: Spec) -> list[str]:
+    """Member levels (plans) that no allowed move leads into from another status level (a
+    non-member or another plan) in any level of the fixed axes ``not_sold`` names: nobody can
+    join them or change into them, so only customers already in them (data) can hold them."""
+    dims, mask = move_mask(spec, spec.status_axis)
+    lv = spec.axis_levels(spec.status_axis)
+    out = []
+    for plan in spec.members:
+        k = lv.index(plan)
+        into = mask[..., k]  # over the rule's current axes
+        if spec.status_axis in dims:
+            into = np.delete(into, k, axis=0)  # staying in the plan is no way in
+        elif len(lv) < 2:
+            continue
+        if not into.any():
+            out.append(plan)
+    return out
+
+
+def unreachable_plan_warning(spec: Spec, plan: str, data: str) -> str:
+    """The warning line for a plan nobody can move into (``data`` says what the data shows)."""
+    st = spec.status_axis
+    return (f"axes.{st}: plan '{plan}' has no way in (no move rule leads into it from a non-member or another "
+            f"plan) {data}; its values are those of states nobody reaches: allow a move into it in "
+            f"axes.{st}.moves or not_sold, or remove the plan")
+
+
 def table_from_rows(spec: Spec, factor: Factor, source: str = "<spec>") -> np.ndarray:
     """Build a factor table from the spec's written ``table`` rows (later rows override)."""
     ax = spec.axes[factor.axis]

@@ -14,14 +14,14 @@ pair by pair; the engagement step 1.0 ms against 0.5 ms).
 
 When ``a`` is the status axis the counters that move with it are resolved in the same loop:
 for the pair ``(s, s')`` a counter's next level is one fixed map of its current level
-(:func:`stateworth.rules.operator.counter_index`: unchanged, +1 capped, or reset to 0), so it
+(:func:`stateworth.rules.counters.counter_index`: unchanged, +1 capped, or reset to 0), so it
 is a shifted or broadcast view of the frame, not a gather.
 
 The transpose (for ``P^T``) is written out the same way (a shift becomes a shift the other way,
 a reset a sum into level 0), because ``jax.linear_transpose`` of the slices measured 5x slower
 than the forward step.
 
-Dimensions are named as in :func:`stateworth.rules.operator.build_plan`: ``"x"`` for the
+Dimensions are named as in :func:`stateworth.rules.grid_operator.build_plan`: ``"x"`` for the
 current level of axis ``x``, ``"x'"`` for its next level.
 """
 
@@ -56,6 +56,15 @@ class PairStep:
     counters: tuple[tuple[str, tuple], ...]
     key: str
     perm: tuple[int, ...] = ()  # the stored table is np.transpose(factor table, perm)
+
+    def apply(self, arrays: dict, frame: jnp.ndarray) -> jnp.ndarray:
+        """The step on ``frame`` (a step of the plan, :mod:`stateworth.rules.steps`)."""
+        return apply(self, arrays[self.key], frame)
+
+    def transpose(self, arrays: dict, cotangent: jnp.ndarray, before) -> jnp.ndarray:
+        """Its transpose, written out (:func:`apply_transpose`); ``before``: the shape and dtype
+        of the frame the step was applied to."""
+        return apply_transpose(self, arrays[self.key], cotangent, tuple(before.shape))
 
 
 def classify(col: np.ndarray):

@@ -50,40 +50,58 @@ def period_cash(spec, grid: Grid, stream) -> np.ndarray:
         on_plan = codes[st] == lv.index(plan)
         if isinstance(val, dict):
             fax = next(f for f in fixed if all(k in spec.axis_levels(f) for k in val))
-            flv = spec.axis_levels(fax)
-            table = np.zeros(len(flv))
-            for k, v in val.items():
-                table[flv.index(k)] = v
+            # by the grid's own levels: a sub-grid (some fixed cells only) keeps its prices
+            table = np.array([float(val.get(lv_f, 0.0)) for lv_f in grid.axis(fax).levels])
             c[on_plan] += table[codes[fax][on_plan]]
         else:
             c[on_plan] += val
     c *= 1.0 - stream.fees_share
     for cax, table in stream.costs.items():
-        alv = spec.axis_levels(cax)
-        vec = np.zeros(len(alv))
-        for k, v in table.items():
-            vec[alv.index(k)] = v
+        vec = np.array([float(table.get(lv_c, 0.0)) for lv_c in grid.axis(cax).levels])
         c -= np.where(member, vec[codes[cax]], 0.0)
     return c
 
 
-def reward_vector(spec, grid: Grid, operator, stream, beta: float) -> np.ndarray:
-    """The Bellman reward ``r`` for one stream (``stream=None`` is member_months)."""
+def expected_amounts(spec, grid: Grid, factors, tables: dict[str, np.ndarray], amounts: np.ndarray,
+                     xp=np) -> np.ndarray:
+    """``E[a(st, st') | s]`` for every state, ``(n,)``: the expected one-off amount of the next
+    status move, ``sum_{st'} P(st' | s) a(st(s), st')``.
+
+    Only the factors drawn up to the status matter (later ones sum to one), and only through
+    the current axes they are given, so the expectation is one einsum over those tables and
+    ``amounts`` (a small array over the current axes involved), broadcast to the grid: no
+    operator, no transition matrix. ``xp`` is ``numpy`` or ``jax.numpy`` (traceable, for
+    posterior draws)."""
+    import string
+
+    st = spec.status_axis
+    letters = iter(string.ascii_letters)
+    cur = {a.name: next(letters) for a in grid.axes}
+    nxt = {}
+    ops, subs = [], []
+    for f in factors:
+        nxt[f.axis] = next(letters)
+        subs.append("".join(nxt[g[5:]] if g.startswith("next.") else cur[g] for g in f.given) + nxt[f.axis])
+        ops.append(tables[f.axis])
+        if f.axis == st:
+            break
+    ops.append(amounts)
+    subs.append(cur[st] + nxt[st])
+    mentioned = set("".join(subs))
+    out = [a.name for a in grid.axes if cur[a.name] in mentioned]
+    expr = ",".join(subs) + "->" + "".join(cur[a] for a in out)
+    small = xp.einsum(expr, *ops)
+    shape = [grid.axis(a.name).size if a.name in out else 1 for a in grid.axes]
+    return xp.broadcast_to(small.reshape(shape), grid.shape).reshape(-1)
+
+
+def reward_vector(spec, grid: Grid, factors, tables: dict[str, np.ndarray], stream, beta: float) -> np.ndarray:
+    """The Bellman reward ``r`` for one stream (``stream=None`` is member_months), ``(n,)`` in
+    money per period: ``c + beta E[a | s]`` with cash at the start of a period, ``beta (c + E[a | s])``
+    at its end (see the module doc)."""
     c = period_cash(spec, grid, stream)
     a = transition_amounts(spec, stream)
-    ea = np.zeros(grid.size)
-    if np.any(a != 0):
-        st = spec.status_axis
-        codes = grid.codes()[grid.position(st)]
-        cols = []
-        rows_nz = [i for i in range(a.shape[0]) if np.any(a[i] != 0)]
-        for i in rows_nz:
-            cols.append(a[i][codes])  # x_i(s') = a(i, st'(s'))
-        import jax.numpy as jnp
-        y = np.asarray(operator.mv(jnp.asarray(np.stack(cols, axis=1))))
-        for j, i in enumerate(rows_nz):
-            sel = codes == i
-            ea[sel] = y[sel, j]
+    ea = expected_amounts(spec, grid, factors, tables, a) if np.any(a != 0) else np.zeros(grid.size)
     if spec.model.discount.cash == "start":
         return c + beta * ea
     return beta * (c + ea)

@@ -213,15 +213,66 @@ def _pydantic_problems(err: ValidationError) -> list[str]:
 
 
 def parse_spec(data: dict[str, Any], source: str = "<spec>") -> Spec:
-    """Validate a spec given as a dict (already parsed TOML). Raises SpecError with all problems."""
+    """Validate a spec given as a dict (already parsed TOML). Raises SpecError with all problems
+    (:func:`spec_problems`: unknown keys do not hide the cross-reference problems)."""
+    spec, problems = spec_problems(data)
+    if problems:
+        raise _spec_error(source, problems)
+    assert spec is not None
+    return spec
+
+
+def spec_problems(data: dict[str, Any]) -> tuple[Spec | None, list[str]]:
+    """``(spec, problems)``: every problem of a spec dict at once (the spec is None when any).
+
+    A key pydantic does not know (a misspelt key) stops it from building the spec, which would
+    hide every cross-reference problem behind the first typo. An unknown key contributes nothing
+    to the spec, so when unknown keys are all pydantic refuses, they are taken out of a copy and
+    the cross-reference checks (:func:`check_spec`) run on the rest. A value of the wrong type
+    (or a required key missing) is listed alone with the other refused values: without it the
+    rest cannot be read as meant (a plan dropped from ``members`` would make every mention of
+    it look wrong)."""
     try:
         spec = Spec.model_validate(data)
     except ValidationError as err:
-        raise _spec_error(source, _pydantic_problems(err)) from None
+        problems = _pydantic_problems(err)
+        if any(e["type"] != "extra_forbidden" for e in err.errors()):
+            return None, problems
+        try:
+            rest = Spec.model_validate(_without(data, [_data_path(data, e["loc"]) for e in err.errors()]))
+        except ValidationError:  # pragma: no cover - removing unknown keys leaves a readable spec
+            return None, problems
+        return None, problems + [pr for pr in check_spec(rest) if pr not in problems]
     problems = check_spec(spec)
-    if problems:
-        raise _spec_error(source, problems)
-    return spec
+    return (None if problems else spec), problems
+
+
+def _data_path(data: Any, loc: tuple) -> tuple:
+    """The part of a pydantic error location that exists in the data (pydantic adds the names
+    of union branches, ``str`` or ``list[str]``, which are not keys)."""
+    out: list = []
+    cur = data
+    for part in loc:
+        if isinstance(cur, dict) and part in cur:
+            out.append(part)
+            cur = cur[part]
+        elif isinstance(cur, list) and isinstance(part, int) and 0 <= part < len(cur):
+            out.append(part)
+            cur = cur[part]
+    return tuple(out)
+
+
+def _without(data: Any, paths: list[tuple]) -> Any:
+    """A deep copy of ``data`` without the dict keys at ``paths``."""
+    import copy
+
+    out = copy.deepcopy(data)
+    for path in paths:
+        parent = out
+        for part in path[:-1]:
+            parent = parent[part]
+        parent.pop(path[-1], None)
+    return out
 
 
 def load_spec(path: str | Path) -> Spec:

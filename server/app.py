@@ -76,6 +76,10 @@ class ServerConfig:
     work_workers: int = 2
     work_queue: int = 8
     work_cache: int = 256
+    #: bytes the solve cache may hold (LRU beyond)
+    work_cache_bytes: int = 256 * 1024**2
+    #: bytes the finite-horizon values of all models may hold (LRU beyond)
+    horizon_cache_bytes: int = 256 * 1024**2
     work_seconds: float = 300.0
     drain_seconds: float = 10.0
     metrics_host: str = "127.0.0.1"
@@ -107,8 +111,9 @@ class Server:
     def __init__(self, config: ServerConfig) -> None:
         self.config = config
         self.metrics = Metrics()
-        self.store = ModelStore(config.model_dir, build=config.build)
-        self.pool = WorkPool(config.work_workers, config.work_queue, config.work_cache, config.work_seconds)
+        self.store = ModelStore(config.model_dir, build=config.build, horizon_cache_bytes=config.horizon_cache_bytes)
+        self.pool = WorkPool(config.work_workers, config.work_queue, config.work_cache, config.work_seconds,
+                             cache_bytes=config.work_cache_bytes)
         self.health = health.HealthServicer()
         self._stopped = threading.Event()
         self.port: int | None = None
@@ -149,6 +154,11 @@ class Server:
         self.metrics.gauges["stateworth_model_generation"] = lambda: self.store.snapshot.generation
         self.metrics.gauges["stateworth_work_cache_hits_total"] = lambda: self.pool.hits
         self.metrics.gauges["stateworth_work_cache_misses_total"] = lambda: self.pool.misses
+        self.metrics.gauges["stateworth_work_cache_bytes"] = lambda: self.pool.cached_bytes
+        self.metrics.gauges["stateworth_work_cache_evictions_total"] = lambda: self.pool.evictions
+        self.metrics.gauges["stateworth_horizon_cache_bytes"] = lambda: self.store.horizons.stats()["bytes"]
+        self.metrics.gauges["stateworth_horizon_cache_evictions_total"] = \
+            lambda: self.store.horizons.stats()["evictions"]
         self._set_health(False)
 
     def _set_health(self, serving: bool) -> None:

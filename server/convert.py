@@ -160,7 +160,7 @@ def batch_values(valuer, idx: np.ndarray, stream: str, horizon: int | None, leve
 def model_version(served, default: bool, full: bool = True) -> model_pb2.ModelVersion:
     v = served.valuer
     m = v.model
-    sol = v.solution
+    sol = v.solve_stats
     mv = model_pb2.ModelVersion(name=served.resource, version=served.version, content_hash=m.hash,
                                 artifact=served.artifact, default_version=default, state_count=m.n_states,
                                 currency=m.currency)
@@ -173,8 +173,9 @@ def model_version(served, default: bool, full: bool = True) -> model_pb2.ModelVe
         mv.discounting.CopyFrom(model_pb2.Discounting(beta=float(m.beta), period=spec.model.period,
                                                       spec=struct(spec.model.discount.model_dump())))
         mv.solve_statistics.CopyFrom(model_pb2.SolveStatistics(
-            method=sol.method, status=sol.status.name.lower(), iterations=int(sol.iterations),
-            operator_applies=int(sol.operator_applies), residual=float(sol.residual),
+            method=str(sol.get("method", "")), status=str(sol.get("status", "")),
+            iterations=int(sol.get("iterations", 0)), operator_applies=int(sol.get("operator_applies", 0)),
+            residual=float(sol.get("residual") or 0.0),
             build_seconds=float(served.build_seconds), draw_count=int(v.n_draws)))
         mv.fit_diagnostics.CopyFrom(struct(summary(served.diagnostics)))
     ts = timestamp_pb2.Timestamp()

@@ -1,108 +1,140 @@
-"""Request counts and latency histograms in the Prometheus text exposition format (0.0.4).
+"""Request counts and latency histograms, exposed with ``prometheus_client``.
 
-Exposed at ``http://HOST:PORT/metrics`` by a small HTTP server on loopback when the server is
+Exposed at ``http://HOST:PORT/metrics`` (Prometheus text format 0.0.4, or OpenMetrics when the
+scraper asks for it) by ``prometheus_client``'s HTTP server on loopback when the server is
 started with ``--metrics-port`` (``--metrics-host`` to change the address). Series:
 
 * ``stateworth_requests_total{method, code}``: finished calls by gRPC method and status code;
 * ``stateworth_request_seconds{method}``: histogram of call latency in seconds (server side,
   from the call's start to its last message);
-* ``stateworth_models_loaded``, ``stateworth_model_generation``: what is being served;
 * ``stateworth_reloads_total{result}``: admin loads by result (ok, failed);
-* ``stateworth_work_cache_total{result}``: solve-cache hits and misses.
+* the gauges the server registers in :attr:`Metrics.gauges`, read when scraped:
+  ``stateworth_models_loaded``, ``stateworth_model_generation`` (what is being served),
+  ``stateworth_work_cache_hits_total``, ``stateworth_work_cache_misses_total``,
+  ``stateworth_work_cache_bytes``, ``stateworth_work_cache_evictions_total`` (solve cache),
+  ``stateworth_horizon_cache_bytes``, ``stateworth_horizon_cache_evictions_total``.
+
+Each :class:`Metrics` holds its own ``CollectorRegistry`` (``prometheus_client``'s default
+registry, a process-wide global, is never used), so two servers in one process count apart.
 """
 
 from __future__ import annotations
 
-import bisect
-import threading
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from typing import Callable
+from typing import Callable, Iterable, Iterator, Protocol
 
-#: histogram bucket upper bounds, seconds
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+from prometheus_client.core import Metric
+from prometheus_client.exposition import generate_latest
+
+#: histogram bucket upper bounds, seconds (+Inf is added by the histogram)
 BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
 
+#: HELP text of the gauges the server registers (others get their name)
+GAUGE_HELP = {
+    "stateworth_models_loaded": "Model versions being served.",
+    "stateworth_model_generation": "Snapshots of the model directory loaded since the start.",
+    "stateworth_work_cache_hits_total": "Calls that solve answered from the solve cache.",
+    "stateworth_work_cache_misses_total": "Calls that solve that were not in the solve cache.",
+    "stateworth_work_cache_bytes": "Bytes of the results held in the solve cache.",
+    "stateworth_work_cache_evictions_total": "Results evicted from the solve cache (least recently used first).",
+    "stateworth_horizon_cache_bytes": "Bytes of finite-horizon values held for all models.",
+    "stateworth_horizon_cache_evictions_total": "Finite-horizon values evicted (least recently used first).",
+}
 
-def _esc(v: str) -> str:
-    return v.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
+
+class Collector(Protocol):
+    """What ``prometheus_client`` exposes: anything whose ``collect()`` yields metric families."""
+
+    def collect(self) -> Iterable[Metric]: ...
+
+
+class GaugeFunctions(dict):
+    """``name -> callable``: each entry becomes a ``prometheus_client`` gauge of the registry
+    whose value is the callable's when scraped (setting a name again replaces its callable)."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        super().__init__()
+        self._registry = registry
+        self._gauges: dict[str, Gauge] = {}
+
+    def __setitem__(self, name: str, fn: Callable[[], float]) -> None:
+        super().__setitem__(name, fn)
+        gauge = self._gauges.get(name)
+        if gauge is None:
+            gauge = self._gauges[name] = Gauge(name, GAUGE_HELP.get(name, name), registry=self._registry)
+        gauge.set_function(fn)
+
+
+class WithoutCreated:
+    """A registry's families without the ``_created`` samples ``prometheus_client`` adds to
+    counters and histograms (a creation timestamp per series, which doubles the series count
+    and which nothing here reads; the library's own switch for them is process-global)."""
+
+    def __init__(self, registry: Collector) -> None:
+        self.registry = registry
+
+    def collect(self) -> Iterator[Metric]:
+        for family in self.registry.collect():
+            family.samples = [s for s in family.samples if not s.name.endswith("_created")]
+            yield family
+
+    def restricted_registry(self, names: Iterable[str]) -> "WithoutCreated":
+        """The same for the families named (the endpoint's ``?name[]=`` filter)."""
+        return WithoutCreated(self.registry.restricted_registry(names))  # type: ignore[attr-defined]
 
 
 class Metrics:
-    """Thread-safe counters and histograms; :meth:`render` gives the exposition text."""
+    """The server's counters, histograms and gauges in a registry of its own. Thread-safe
+    (``prometheus_client`` locks each value); :meth:`render` gives the exposition text."""
 
     def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self._requests: dict[tuple[str, str], int] = {}
-        self._hist: dict[str, list[float]] = {}  # method -> bucket counts + [sum, count]
-        self._reloads: dict[str, int] = {"ok": 0, "failed": 0}
-        self.gauges: dict[str, Callable[[], float]] = {}
+        self.registry = CollectorRegistry()
+        self._requests = Counter("stateworth_requests", "Finished gRPC calls by method and status code.",
+                                 ("method", "code"), registry=self.registry)
+        self._latency = Histogram("stateworth_request_seconds", "Latency of gRPC calls in seconds.", ("method",),
+                                  buckets=BUCKETS, registry=self.registry)
+        self._reloads = Counter("stateworth_reloads", "Admin loads and reloads by result.", ("result",),
+                                registry=self.registry)
+        for result in ("ok", "failed"):  # both series exist from the start, at 0
+            self._reloads.labels(result)
+        #: gauges read when scraped: metric name -> callable returning its value
+        self.gauges: dict[str, Callable[[], float]] = GaugeFunctions(self.registry)
+        #: what the endpoint serves
+        self.exposed = WithoutCreated(self.registry)
+        # children by label values: labels() takes the metric's lock and builds a key per call
+        self._children: dict[tuple[str, str], tuple] = {}
 
     def observe(self, method: str, code: str, seconds: float) -> None:
-        with self._lock:
-            self._requests[(method, code)] = self._requests.get((method, code), 0) + 1
-            h = self._hist.get(method)
-            if h is None:
-                h = self._hist[method] = [0.0] * (len(BUCKETS) + 2)
-            i = bisect.bisect_left(BUCKETS, seconds)
-            if i < len(BUCKETS):
-                h[i] += 1
-            h[-2] += seconds
-            h[-1] += 1
+        """Count one finished call of ``method`` with status ``code`` that took ``seconds``."""
+        child = self._children.get((method, code))
+        if child is None:
+            child = self._children[(method, code)] = (self._requests.labels(method, code).inc,
+                                                      self._latency.labels(method).observe)
+        child[0]()
+        child[1](seconds)
 
     def reload(self, ok: bool) -> None:
-        with self._lock:
-            self._reloads["ok" if ok else "failed"] += 1
+        self._reloads.labels("ok" if ok else "failed").inc()
 
     def render(self) -> str:
-        out = ["# HELP stateworth_requests_total Finished gRPC calls by method and status code.",
-               "# TYPE stateworth_requests_total counter"]
-        with self._lock:
-            for (m, c), n in sorted(self._requests.items()):
-                out.append(f'stateworth_requests_total{{method="{_esc(m)}",code="{c}"}} {n}')
-            out += ["# HELP stateworth_request_seconds Latency of gRPC calls in seconds.",
-                    "# TYPE stateworth_request_seconds histogram"]
-            for m, h in sorted(self._hist.items()):
-                acc = 0.0
-                for b, n in zip(BUCKETS, h):
-                    acc += n
-                    out.append(f'stateworth_request_seconds_bucket{{method="{_esc(m)}",le="{b:g}"}} {int(acc)}')
-                out.append(f'stateworth_request_seconds_bucket{{method="{_esc(m)}",le="+Inf"}} {int(h[-1])}')
-                out.append(f'stateworth_request_seconds_sum{{method="{_esc(m)}"}} {h[-2]:.6f}')
-                out.append(f'stateworth_request_seconds_count{{method="{_esc(m)}"}} {int(h[-1])}')
-            out += ["# HELP stateworth_reloads_total Admin loads and reloads by result.",
-                    "# TYPE stateworth_reloads_total counter"]
-            for r, n in sorted(self._reloads.items()):
-                out.append(f'stateworth_reloads_total{{result="{r}"}} {n}')
-            gauges = dict(self.gauges)
-        for name, fn in sorted(gauges.items()):
-            out += [f"# TYPE {name} gauge", f"{name} {fn():g}"]
-        return "\n".join(out) + "\n"
+        """The exposition text (Prometheus text format 0.0.4)."""
+        return generate_latest(self.exposed).decode()
 
 
-def serve_metrics(metrics: Metrics, host: str, port: int) -> ThreadingHTTPServer:
-    """Start the /metrics endpoint in a daemon thread; returns the HTTP server (``server_port``)."""
-    return serve_exposition(metrics.render, host, port)
+class MetricsEndpoint(Protocol):
+    server_port: int
+
+    def shutdown(self) -> None: ...
 
 
-def serve_exposition(render: Callable[[], str], host: str, port: int) -> ThreadingHTTPServer:
-    """Serve ``render()`` (exposition text) at /metrics from a daemon thread (OSError when the
-    address cannot be bound)."""
-
-    class Handler(BaseHTTPRequestHandler):
-        def do_GET(self) -> None:  # noqa: N802 - http.server's naming
-            if self.path.split("?")[0] != "/metrics":
-                self.send_error(404, "only /metrics is served here")
-                return
-            body = render().encode()
-            self.send_response(200)
-            self.send_header("Content-Type", "text/plain; version=0.0.4; charset=utf-8")
-            self.send_header("Content-Length", str(len(body)))
-            self.end_headers()
-            self.wfile.write(body)
-
-        def log_message(self, *args) -> None:  # scrapes are not worth a log line each
-            return
-
-    httpd = ThreadingHTTPServer((host, port), Handler)
-    httpd.daemon_threads = True
-    threading.Thread(target=httpd.serve_forever, name="stateworth-metrics", daemon=True).start()
+def serve_registry(registry: Collector, host: str, port: int) -> MetricsEndpoint:
+    """Serve ``registry`` at http://host:port/metrics from a daemon thread
+    (``prometheus_client.start_http_server``); returns the HTTP server (``server_port``,
+    ``shutdown()``). OSError when the address cannot be bound."""
+    httpd, _thread = start_http_server(port, addr=host, registry=registry)
     return httpd
+
+
+def serve_metrics(metrics: Metrics, host: str, port: int) -> MetricsEndpoint:
+    """Start the /metrics endpoint of a server's :class:`Metrics` in a daemon thread."""
+    return serve_registry(metrics.exposed, host, port)

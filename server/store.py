@@ -21,7 +21,6 @@ whose artifact was written last (manifest modification time; ties by artifact di
 
 from __future__ import annotations
 
-import json
 import logging
 import threading
 import time
@@ -237,12 +236,17 @@ class ModelStore:
     ``build`` turns a compiled model into its Valuer (default ``Valuer.build``; tests may slow
     it down to widen the reload window)."""
 
-    def __init__(self, root: str | Path, build: Callable[[Any], Any] | None = None) -> None:
+    def __init__(self, root: str | Path, build: Callable[[Any], Any] | None = None,
+                 horizon_cache_bytes: int | None = None) -> None:
+        from stateworth.valuation.solved import HORIZON_CACHE_BYTES, HorizonCache
+
         self.root = Path(root)
         self._snapshot = Snapshot()
         self._reload_lock = threading.Lock()
         self._build = build
         self.listeners: list[Callable[[Snapshot], None]] = []
+        #: finite-horizon values of every served model, within one byte bound (LRU)
+        self.horizons = HorizonCache(HORIZON_CACHE_BYTES if horizon_cache_bytes is None else horizon_cache_bytes)
 
     @property
     def snapshot(self) -> Snapshot:
@@ -273,8 +277,18 @@ class ModelStore:
             if self._build is not None:
                 valuer = self._build(model)
             else:
+                # values stored with the model (by fit or solve) are served as they are; a stored
+                # solution that does not match its model refuses the model (StoredValuesError);
+                # a model without one is solved here
                 from stateworth.valuation import Valuer
-                valuer = Valuer.build(model)
+                from stateworth.valuation import stored
+                try:
+                    valuer = Valuer(stored.load(files, model))
+                except FileNotFoundError:
+                    valuer = Valuer.build(model)
+            solved = getattr(valuer, "solved", None)
+            if solved is not None and hasattr(solved, "horizons"):
+                solved.horizons = self.horizons.scoped(model.hash)
         except StateworthError as e:
             raise LoadError(f"artifact '{path.name}' could not be loaded: {e}; the serving models are unchanged",
                             field="artifact") from None

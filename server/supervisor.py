@@ -45,12 +45,16 @@ import threading
 import time
 import urllib.request
 from dataclasses import dataclass, field
-from http.server import ThreadingHTTPServer
-from typing import Callable
+from typing import Callable, Iterator
+
+from prometheus_client import CollectorRegistry
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.exposition import generate_latest
+from prometheus_client.parser import text_string_to_metric_families
 
 from stateworth.errors import StateworthError
 from stateworth.server import logs
-from stateworth.server.metrics import serve_exposition
+from stateworth.server.metrics import MetricsEndpoint, serve_registry
 
 log = logging.getLogger("stateworth.server")
 
@@ -100,47 +104,35 @@ def reserve_port(host: str, port: int) -> socket.socket:
     return s
 
 
-def _family(line: str) -> str:
-    """The metric family a sample or comment line belongs to (histogram series share one)."""
-    if line.startswith("#"):
-        parts = line.split()
-        return parts[2] if len(parts) > 2 else ""
-    name = line.split("{", 1)[0].split(" ", 1)[0]
-    for suffix in ("_bucket", "_sum", "_count"):
-        if name.endswith(suffix):
-            return name[: -len(suffix)]
-    return name
-
-
-def merge_workers(texts: list[tuple[int, str]]) -> list[str]:
-    """The Prometheus exposition texts of several workers as one: every sample gets a
-    ``worker="i"`` label, and each metric family is written once, its HELP/TYPE lines (from the
-    first worker that has them) followed by the samples of every worker, as the format asks."""
-    comments: dict[str, list[str]] = {}
-    samples: dict[str, list[str]] = {}
+def merge_workers(texts: list[tuple[int, str]]) -> list[Metric]:
+    """The exposition texts of several workers as one set of metric families
+    (``prometheus_client.parser``): every sample gets a ``worker="i"`` label, and each family
+    is kept once (its HELP and type from the first worker that has it) with the samples of
+    every worker, as the format asks."""
+    families: dict[str, Metric] = {}
     for index, text in texts:
-        for line in text.splitlines():
-            if not line.strip():
-                continue
-            fam = _family(line)
-            if line.startswith("#"):
-                have = comments.setdefault(fam, [])
-                if line not in have:
-                    have.append(line)
-                samples.setdefault(fam, [])
-                continue
-            name, _, rest = line.partition(" ")
-            if "{" in name:
-                base, labels = name.split("{", 1)
-                labelled = f'{base}{{worker="{index}",{labels} {rest}' if labels != "}" else f'{base}{{worker="{index}"}} {rest}'
-            else:
-                labelled = f'{name}{{worker="{index}"}} {rest}'
-            comments.setdefault(fam, [])
-            samples.setdefault(fam, []).append(labelled)
-    out = []
-    for fam in samples:
-        out += comments.get(fam, []) + samples[fam]
-    return out
+        for family in text_string_to_metric_families(text):
+            merged = families.get(family.name)
+            if merged is None:
+                merged = families[family.name] = Metric(family.name, family.documentation, family.type, family.unit)
+            merged.samples += [s._replace(labels={"worker": str(index), **s.labels}) for s in family.samples]
+    return list(families.values())
+
+
+class _MergedWorkers:
+    """The supervisor's collector: each ready worker's own endpoint, scraped when the
+    supervisor's is, merged by :func:`merge_workers`, plus ``stateworth_workers_ready`` and
+    ``stateworth_worker_restarts_total``."""
+
+    def __init__(self, supervisor: "Supervisor") -> None:
+        self.supervisor = supervisor
+
+    def collect(self) -> Iterator[Metric]:
+        texts = self.supervisor.scrape_workers()
+        yield from merge_workers(texts)
+        yield GaugeMetricFamily("stateworth_workers_ready", "Workers answering calls.", value=len(texts))
+        yield CounterMetricFamily("stateworth_worker_restarts", "Workers restarted by the supervisor.",
+                                  value=self.supervisor.restarts_total)
 
 
 def port_free(host: str, port: int) -> bool:
@@ -183,7 +175,10 @@ class Supervisor:
         self._jobs: queue.Queue = queue.Queue()
         self._pending: dict[str, dict] = {}
         self._pending_lock = threading.Lock()
-        self._httpd: ThreadingHTTPServer | None = None
+        self._httpd: MetricsEndpoint | None = None
+        #: the supervisor's own metrics registry (the workers' series, merged when scraped)
+        self.registry = CollectorRegistry()
+        self.registry.register(_MergedWorkers(self))
         self._life = threading.Lock()  # spawning vs stopping
         self._started = False  # every worker was ready once: from then on, exits are restarted
         self.restarts_total = 0
@@ -306,7 +301,8 @@ class Supervisor:
                 state["done"].set()
 
     # ---- metrics -----------------------------------------------------------------------------
-    def render_metrics(self) -> str:
+    def scrape_workers(self) -> list[tuple[int, str]]:
+        """(index, exposition text) of every ready worker that answered its endpoint."""
         texts: list[tuple[int, str]] = []
         for w in list(self.workers):
             if w is None or not w.ready.is_set() or w.metrics_port is None or w.proc.poll() is not None:
@@ -316,17 +312,15 @@ class Supervisor:
                     texts.append((w.index, r.read().decode()))
             except OSError:
                 continue
-        out = merge_workers(texts)
-        out += ["# HELP stateworth_workers_ready Workers answering calls.", "# TYPE stateworth_workers_ready gauge",
-                f"stateworth_workers_ready {len(texts)}",
-                "# HELP stateworth_worker_restarts_total Workers restarted by the supervisor.",
-                "# TYPE stateworth_worker_restarts_total counter",
-                f"stateworth_worker_restarts_total {self.restarts_total}"]
-        return "\n".join(out) + "\n"
+        return texts
+
+    def render_metrics(self) -> str:
+        """The merged exposition text (Prometheus text format 0.0.4)."""
+        return generate_latest(self.registry).decode()
 
     def _serve_metrics(self) -> None:
         try:
-            self._httpd = serve_exposition(self.render_metrics, self.metrics_host, self.metrics_port)
+            self._httpd = serve_registry(self.registry, self.metrics_host, self.metrics_port)
         except OSError as e:
             raise StateworthError(f"cannot serve metrics on {self.metrics_host}:{self.metrics_port} ({e.strerror})",
                                   where="--metrics-port") from None

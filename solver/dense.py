@@ -11,7 +11,7 @@ from stateworth import config
 
 def dense_matrix(operator, n: int) -> jax.Array:
     """The operator as a dense ``(n, n)`` array, built by applying it to the identity."""
-    config.float64()
+    config.use_jax()
     return operator.mv(jnp.eye(n))
 
 
@@ -27,6 +27,6 @@ def _dense_solve(P: jax.Array, beta: jax.Array, b: jax.Array):
 
 def solve_dense(operator, b: jax.Array, beta: float):
     """Solve ``(I - beta A) x = b`` for ``b`` of shape ``(n, k)``. Returns ``(x, residual, status)``."""
-    config.float64()
+    config.use_jax()
     P = dense_matrix(operator, b.shape[0])
     return _dense_solve(P, jnp.float64(beta), b)

@@ -12,7 +12,7 @@ GMRES needed 37-46 iterations against 11-15 (measured on the 10^5 and 3.6 x 10^5
 reference grids; with this space, 17).
 
 Coarse space: for the *frozen statuses* (those no counter advances on arrival, see
-:func:`rules.operator.counter_flags`) one aggregate per fixed cell, counter levels (all
+:func:`rules.counters.counter_flags`) one aggregate per fixed cell, counter levels (all
 counters, kept whole), frozen status and the most persistent chance axes (up to
 :data:`MAX_BLOCK` per block), averaging over the other axes. The Galerkin matrix keeps only moves
 that stay in the cluster (frozen status to frozen status with every counter unchanged); moves
@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import string
 from dataclasses import dataclass
+from functools import partial
 from typing import Mapping
 
 import jax
@@ -75,6 +76,9 @@ class FrozenLayout:
     #: no move between two of them and the status leads the key (then the Galerkin matrix is
     #: block-diagonal by status and each status's part is inverted alone), else 1
     split: int = 1
+    #: per kept cycle: einsum subscripts (current, next) and its size; its operand is the
+    #: one-period rotation ``S[c, (c + 1) mod size] = 1``
+    shifts: tuple[tuple[str, int], ...] = ()
 
 
 def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
@@ -96,15 +100,18 @@ def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
         return None
     from stateworth.solver.preconditioner import persistence
 
+    # cycles first, for the reason the main coarse key keeps them (a rotation's modes are slow):
+    # a frozen cluster averaged over the calendar cannot follow a seasonal joining rate
+    cycles = [a.name for a in grid.axes if a.kind == "cycle"]
     chance = sorted((a.name for a in grid.axes if a.kind == "chance"), key=lambda a: -persistence(model, a))
     kept, size = [], len(frozen)
-    for a in chance:
+    for a in cycles + chance:
         if size * grid.axis(a).size <= max_block:
             kept.append(a)
             size *= grid.axis(a).size
     letters = iter(string.ascii_letters)
     cur = {a.name: next(letters) for a in grid.axes}
-    nxt = {a.name: next(letters) for a in grid.axes if a.kind in ("status", "chance")}
+    nxt = {a.name: next(letters) for a in grid.axes if a.kind in ("status", "chance") or a.name in kept}
     for c in counters:  # a counter that stays keeps its letter
         nxt[c] = cur[c]
     st_f, st_nf = next(letters), next(letters)
@@ -117,16 +124,20 @@ def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
         idx = counter_index(spec, c)
         stay = (idx == np.arange(idx.shape[0])[:, None, None]).astype(np.float64)
         masks.append((cur[c] + cur[st] + nxt[st], tuple(map(tuple, stay.reshape(stay.shape[0], -1)))))
+    shifts = tuple((cur[a] + nxt[a], grid.axis(a).size) for a in kept if grid.axis(a).kind == "cycle")
     block_axes = [a.name for a in grid.axes if a.kind in ("fixed", "counter")]  # grid order
-    key_cur = [st_f if a.name == st else cur[a.name] for a in grid.axes if a.name == st or a.name in kept]
-    key_nxt = [st_nf if a.name == st else nxt[a.name] for a in grid.axes if a.name == st or a.name in kept]
+    # the status leads the key (then the kept axes in grid order), so that blocks split by status
+    key_axes = [st] + [a.name for a in grid.axes if a.name in kept]
+    key_cur = [st_f if a == st else cur[a] for a in key_axes]
+    key_nxt = [st_nf if a == st else nxt[a] for a in key_axes]
     out = "".join(cur[a] for a in block_axes) + "".join(key_cur) + "".join(key_nxt)
-    mentioned = set("".join(subs) + "".join(m[0] for m in masks))
+    mentioned = set("".join(subs) + "".join(m[0] for m in masks) + "".join(s for s, _ in shifts))
     ones = tuple((cur[a], grid.axis(a).size) for a in block_axes + [k for k in kept]
                  if cur[a] not in mentioned)
     mentioned |= {o[0] for o in ones}
     # the status one-hots pick the frozen levels of the current and next status
-    parts = list(subs) + [m[0] for m in masks] + [cur[st] + st_f, nxt[st] + st_nf] + [o[0] for o in ones]
+    parts = list(subs) + [m[0] for m in masks] + [s for s, _ in shifts] + [cur[st] + st_f, nxt[st] + st_nf] + \
+        [o[0] for o in ones]
     expr = ",".join(parts) + "->" + out
     denom = 1.0
     for a in grid.axes:  # averaged current axes that the operands mention
@@ -137,44 +148,59 @@ def frozen_layout(model, max_block: int = MAX_BLOCK) -> FrozenLayout | None:
     averaged = [a for a in grid.axes if a.kind not in ("fixed", "counter") and a.name != st and a.name not in kept]
     restrict_denom = float(np.prod([a.size for a in averaged])) if averaged else 1.0
     p_out = "".join(cur[a.name] for a in grid.axes if a not in averaged)
+    # prolong receives the aggregates back in grid order (see FrozenCoarse.prolong)
+    p_in = "".join(st_f if a.name == st else cur[a.name] for a in grid.axes if a not in averaged)
     prolong_shape = tuple(1 if a in averaged else a.size for a in grid.axes)
     blocks = int(np.prod([grid.axis(a).size for a in block_axes], dtype=np.int64))
     if blocks <= 1:
         return None
     span = (frozen[0], frozen[-1] + 1) if frozen == tuple(range(frozen[0], frozen[-1] + 1)) else None
     kept_dims = [a.name for a in grid.axes if a not in averaged]
-    order = [a for a in kept_dims if a in block_axes] + [a for a in kept_dims if a not in block_axes]
+    order = [a for a in kept_dims if a in block_axes] + key_axes
     perm = tuple(kept_dims.index(a) for a in order)
     averaged_pos = tuple(grid.position(a.name) for a in averaged)
     levels = spec.axis_levels(st)
     moves = spec.axes[st].moves or {}
     apart = all(levels[j] not in moves.get(levels[i], levels) for i in frozen for j in frozen if i != j)
-    leads = next(a.name for a in grid.axes if a.name == st or a.name in kept) == st
-    split = len(frozen) if apart and leads and len(frozen) > 1 else 1
+    split = len(frozen) if apart and len(frozen) > 1 else 1
     return FrozenLayout(grid.shape, grid.position(st), frozen, tuple(a.name for a in grid.axes), tuple(kept),
                         tuple(faxes), tuple(subs), tuple(masks), ones, expr, denom,
-                        f"{g},{cur[st]}{st_f}->{r_out}", restrict_denom, f"{r_out},{cur[st]}{st_f}->{p_out}",
-                        prolong_shape, blocks, size, span, averaged_pos, perm, split)
+                        f"{g},{cur[st]}{st_f}->{r_out}", restrict_denom, f"{p_in},{cur[st]}{st_f}->{p_out}",
+                        prolong_shape, blocks, size, span, averaged_pos, perm, split, shifts)
 
 
 def _onehot(layout: FrozenLayout, dtype) -> jax.Array:
     S = layout.grid_shape[layout.status_pos]
     h = np.zeros((S, len(layout.frozen)))
     h[list(layout.frozen), np.arange(len(layout.frozen))] = 1.0
-    return jnp.asarray(h, dtype=dtype)
+    return h.astype(np.dtype(dtype))  # a constant: numpy inside a trace, no conversion kernel
 
 
 def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.Array:
     """``R2 P Q2`` restricted to moves that stay in the cluster: ``(blocks, K2, K2)`` (traceable:
     ``tables`` may be tracers, e.g. one posterior draw inside the batched draw solve)."""
-    config.float64()
+    config.use_jax()
     ops = [jnp.asarray(tables[a], dtype=jnp.float64) for a in layout.factor_axes]
     S = layout.grid_shape[layout.status_pos]
     ops += [jnp.asarray(np.array(m, dtype=np.float64).reshape(len(m), S, S)) for _, m in layout.masks]
+    ops += [jnp.asarray(np.roll(np.eye(n), 1, axis=1)) for _, n in layout.shifts]
     h = _onehot(layout, jnp.float64)
     ops += [h, h]
     ops += [jnp.ones(n) for _, n in layout.ones]
     c = jnp.einsum(layout.expr, *ops, optimize="auto") / layout.denom
+    return c.reshape(layout.blocks, layout.block, layout.block)
+
+
+def frozen_matrix_np(layout: FrozenLayout, tables: Mapping[str, np.ndarray]) -> np.ndarray:
+    """:func:`frozen_matrix` in numpy, for tables known now (no compile)."""
+    ops = [np.asarray(tables[a], dtype=np.float64) for a in layout.factor_axes]
+    S = layout.grid_shape[layout.status_pos]
+    ops += [np.array(m, dtype=np.float64).reshape(len(m), S, S) for _, m in layout.masks]
+    ops += [np.roll(np.eye(n), 1, axis=1) for _, n in layout.shifts]
+    h = np.asarray(_onehot(layout, jnp.float64))
+    ops += [h, h]
+    ops += [np.ones(n) for _, n in layout.ones]
+    c = np.einsum(layout.expr, *ops, optimize="greedy") / layout.denom
     return c.reshape(layout.blocks, layout.block, layout.block)
 
 
@@ -183,20 +209,13 @@ def frozen_matrix(layout: FrozenLayout, tables: Mapping[str, jax.Array]) -> jax.
 _frozen_matrix_jit = jax.jit(frozen_matrix, static_argnums=0)
 
 
-@jax.tree_util.register_pytree_node_class
+@partial(jax.tree_util.register_dataclass, data_fields=["inv"], meta_fields=["layout"])
+@dataclass(frozen=True, eq=False)
 class FrozenCoarse:
     """The frozen-cluster correction as a pytree: ``inv`` ``(blocks, K2, K2)`` is its leaf."""
 
-    def __init__(self, layout: FrozenLayout, inv: jax.Array) -> None:
-        self.layout = layout
-        self.inv = inv
-
-    def tree_flatten(self):
-        return (self.inv,), self.layout
-
-    @classmethod
-    def tree_unflatten(cls, layout, children):
-        return cls(layout, children[0])
+    layout: FrozenLayout
+    inv: jax.Array
 
     def astype(self, dtype) -> "FrozenCoarse":
         return FrozenCoarse(self.layout, self.inv.astype(dtype))
@@ -244,9 +263,21 @@ class FrozenCoarse:
 def frozen_coarse(layout: FrozenLayout, tables: Mapping[str, jax.Array], beta, *, transpose: bool = False,
                   dtype=jnp.float64) -> FrozenCoarse:
     """The correction for ``I - beta P`` (or its transpose) with P's factor ``tables``."""
-    config.float64()
-    from stateworth.solver.preconditioner import _coarse_inverse
+    config.use_jax()
+    from stateworth.solver.preconditioner import _coarse_inverse, coarse_inverse_np
 
+    if not any(isinstance(t, jax.core.Tracer) for t in tables.values()) and \
+            not isinstance(beta, jax.core.Tracer):
+        # built eagerly (a point solve): numpy, no compile
+        C = frozen_matrix_np(layout, tables)
+        if layout.split > 1:
+            S, k = layout.split, layout.block // layout.split
+            C = C.reshape(layout.blocks, S, k, S, k)
+            C = np.stack([C[:, s, :, s, :] for s in range(S)], axis=1).reshape(layout.blocks * S, k, k)
+            inv = coarse_inverse_np(C, beta, transpose).reshape(layout.blocks, S, k, k)
+        else:
+            inv = coarse_inverse_np(C, beta, transpose)
+        return FrozenCoarse(layout, config.device(inv, dtype))
     C = _frozen_matrix_jit(layout, dict(tables))
     b = jnp.asarray(beta, dtype=jnp.float64)
     if layout.split > 1:

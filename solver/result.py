@@ -44,6 +44,8 @@ class Solution:
     notes: list[str] = field(default_factory=list)
     #: value iteration only: elementwise (lower, upper) McQueen-Porteus bracket on V, each (n, k)
     bracket: tuple[np.ndarray, np.ndarray] | None = None
+    #: iterative methods: the most iterations one right-hand side took (``iterations`` sums them)
+    iterations_per_column: int | None = None
 
     def value(self, stream: str | int = 0) -> np.ndarray:
         """The ``(n,)`` value function of one stream (by name or column)."""
@@ -56,6 +58,7 @@ class Solution:
 
     def stats(self) -> dict:
         return {"method": self.method, "status": self.status.name.lower(), "iterations": int(self.iterations),
+                "iterations_per_column": None if self.iterations_per_column is None else int(self.iterations_per_column),
                 "operator_applies": int(self.operator_applies), "residual": float(self.residual),
                 "bound": None if self.bound is None else float(self.bound), "seconds": float(self.seconds),
                 "beta": float(self.beta), "transpose": self.transpose, "horizon": self.horizon,

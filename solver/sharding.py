@@ -69,7 +69,7 @@ def local_devices(count: int):
 
 def shard_model(model, count: int) -> ShardPlan:
     """Pad ``model`` along its first fixed axis to a multiple of ``count`` and build the mesh."""
-    config.float64()
+    config.use_jax()
     from stateworth.rules import compile_model, parse_spec
 
     devices = local_devices(count)
@@ -116,7 +116,7 @@ def put_sharded(plan: ShardPlan, x):
 
 def put_operator(plan: ShardPlan, op):
     """Place the operator's tables: sharded along the first fixed axis where they have it."""
-    from stateworth.rules.operator import GridOperator
+    from stateworth.rules.grid_operator import GridOperator
 
     arrays = {}
     given = {f"table.{f.axis}": op.plan.stored_dims(f"table.{f.axis}", tuple(f.given) + (f"next.{f.axis}",))

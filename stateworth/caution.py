@@ -13,3 +13,7 @@ CAUTION = ("model-based estimate under the model's causal assumptions (moves unc
 #: printed under every command's figures
 CAUTION_LINE = ("Model-based estimates under the model's causal assumptions (moves unconfounded given the "
                 "state); not accounting figures; the discount rate and policy are finance's call.")
+
+#: inside every chart image, where a line must be short (the page beside it carries the full text)
+CAUTION_SHORT = ("Model-based estimates under stated causal assumptions; not accounting figures; "
+                 "the discount rate and policy are finance's call.")

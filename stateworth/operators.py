@@ -1,16 +1,31 @@
 """Linear operators: small pytree objects with ``mv`` (apply) and ``transpose``.
 
-Solvers take any object with this interface, so the same Krylov code runs on the structured grid
-operator of a compiled model (:class:`stateworth.rules.operator.GridOperator`) and on explicit
-matrices used by reference tests (absorbing chains, textbook examples).
+Solvers take any object with the :class:`LinearOperator` interface, so the same Krylov code runs
+on the structured grid operator of a compiled model
+(:class:`stateworth.rules.grid_operator.GridOperator`) and on the explicit matrices of reference
+tests (absorbing chains, textbook examples). What each operator provides:
+
+* ``GridOperator`` is a :class:`StructuredOperator`: ``shape``, ``mv``, ``transpose``, and
+  ``astype`` (the float32 copy the two-level preconditioner smooths with) and ``with_tables``
+  (posterior draws, changed models, marginal values); every solver method, the preconditioner
+  and sharding take it;
+* :class:`MatrixOperator` and :class:`SparseOperator` are :class:`LinearOperator` s with
+  ``csr()``: the dense, value-iteration and GMRES methods (without the preconditioner, which
+  needs a compiled model) and the sparse method (through ``csr()``) take them.
+
+Each is a dataclass registered with :func:`jax.tree_util.register_dataclass`: its arrays are
+the pytree's leaves (so an operator is an ordinary argument of a jitted function, and a stack of
+them can be mapped over) and its static structure the pytree's metadata.
 
 Shapes: an operator is ``(n, n)``; ``mv`` takes ``(n,)`` or ``(n, k)`` (k right-hand sides) and
-returns the same shape. All arithmetic is float64.
+returns the same shape. All arithmetic is float64 unless ``astype`` says otherwise.
 """
 
 from __future__ import annotations
 
-from typing import Protocol, runtime_checkable
+from dataclasses import dataclass
+from functools import partial
+from typing import Mapping, Protocol, runtime_checkable
 
 import jax
 import jax.numpy as jnp
@@ -23,7 +38,9 @@ from stateworth import config
 class LinearOperator(Protocol):
     """A square linear map ``x -> A x`` on float64 vectors of length ``shape[0]``."""
 
-    shape: tuple[int, int]
+    @property
+    def shape(self) -> tuple[int, int]:  # pragma: no cover - protocol
+        ...
 
     def mv(self, x: jax.Array) -> jax.Array:  # pragma: no cover - protocol
         ...
@@ -32,19 +49,41 @@ class LinearOperator(Protocol):
         ...
 
 
-@jax.tree_util.register_pytree_node_class
+@runtime_checkable
+class StructuredOperator(LinearOperator, Protocol):
+    """A transition operator built from factor tables (the grid operator of a compiled model):
+    a :class:`LinearOperator` that can also change the type or the values of its tables while
+    keeping its structure (and so its compiled program)."""
+
+    def astype(self, dtype) -> "StructuredOperator":  # pragma: no cover - protocol
+        """The same operator on tables of ``dtype`` (float32 for the preconditioner); applies then
+        take and return vectors of that type."""
+        ...
+
+    def with_tables(self, tables: Mapping[str, jax.Array]) -> "StructuredOperator":  # pragma: no cover
+        """The same structure with other factor tables, by axis name (a changed or drawn model)."""
+        ...
+
+
+@partial(jax.tree_util.register_dataclass, data_fields=["matrix"], meta_fields=[])
+@dataclass(frozen=True, eq=False)
 class MatrixOperator:
     """An explicit dense matrix as an operator (small models and textbook references).
 
-    ``matrix`` is ``(n, n)``. ``mv(x) = matrix @ x``. Rows need not sum to one: a sub-stochastic
-    matrix models absorption (leaving the chain with value 0), which is what lets ``beta = 1``
-    be solved for episodic examples.
+    ``matrix`` is ``(n, n)`` (made float64). ``mv(x) = matrix @ x``. Rows need not sum to one: a
+    sub-stochastic matrix models absorption (leaving the chain with value 0), which is what lets
+    ``beta = 1`` be solved for episodic examples.
     """
 
-    def __init__(self, matrix: jax.Array) -> None:
-        config.float64()
-        self.matrix = jnp.asarray(matrix, dtype=jnp.float64)
-        self.shape = tuple(self.matrix.shape)  # type: ignore[assignment]
+    matrix: jax.Array
+
+    def __post_init__(self) -> None:
+        config.use_jax()
+        object.__setattr__(self, "matrix", jnp.asarray(self.matrix, dtype=jnp.float64))
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return tuple(self.matrix.shape)  # type: ignore[return-value]
 
     def mv(self, x: jax.Array) -> jax.Array:
         return self.matrix @ x
@@ -52,34 +91,42 @@ class MatrixOperator:
     def transpose(self) -> "MatrixOperator":
         return MatrixOperator(self.matrix.T)
 
-    def tree_flatten(self):
-        return (self.matrix,), None
-
-    @classmethod
-    def tree_unflatten(cls, aux, children):
-        return cls(children[0])
+    def csr(self):
+        """The matrix as scipy CSR (for the host's sparse LU)."""
+        import scipy.sparse as sp
+        return sp.csr_matrix(np.asarray(self.matrix))
 
 
-@jax.tree_util.register_pytree_node_class
+@partial(jax.tree_util.register_dataclass, data_fields=["rows", "cols", "data"], meta_fields=["n"])
+@dataclass(frozen=True, eq=False)
 class SparseOperator:
-    """A CSR matrix (e.g. from ``scipy.sparse``) applied with a segment sum.
+    """A sparse matrix in coordinate form (e.g. from ``scipy.sparse``) applied with a segment sum.
 
-    ``indptr``/``indices``/``data`` follow the CSR convention for an ``(n, n)`` matrix. Used for
-    explicit references; compiled models use the structured grid operator instead.
+    ``rows``, ``cols``, ``data``: the non-zeros ``A[rows[i], cols[i]] = data[i]`` of an ``(n, n)``
+    matrix (made int32, int32, float64). Used for explicit references; compiled models use the
+    structured grid operator instead.
     """
 
-    def __init__(self, rows: jax.Array, cols: jax.Array, data: jax.Array, n: int) -> None:
-        config.float64()
-        self.rows = jnp.asarray(rows, dtype=jnp.int32)
-        self.cols = jnp.asarray(cols, dtype=jnp.int32)
-        self.data = jnp.asarray(data, dtype=jnp.float64)
-        self.n = int(n)
-        self.shape = (self.n, self.n)
+    rows: jax.Array
+    cols: jax.Array
+    data: jax.Array
+    n: int
+
+    def __post_init__(self) -> None:
+        config.use_jax()
+        object.__setattr__(self, "rows", jnp.asarray(self.rows, dtype=jnp.int32))
+        object.__setattr__(self, "cols", jnp.asarray(self.cols, dtype=jnp.int32))
+        object.__setattr__(self, "data", jnp.asarray(self.data, dtype=jnp.float64))
+        object.__setattr__(self, "n", int(self.n))
 
     @classmethod
     def from_scipy(cls, m) -> "SparseOperator":
         coo = m.tocoo()
         return cls(np.asarray(coo.row), np.asarray(coo.col), np.asarray(coo.data), m.shape[0])
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.n, self.n)
 
     def mv(self, x: jax.Array) -> jax.Array:
         vals = self.data.reshape((-1,) + (1,) * (x.ndim - 1)) * x[self.cols]
@@ -88,9 +135,8 @@ class SparseOperator:
     def transpose(self) -> "SparseOperator":
         return SparseOperator(self.cols, self.rows, self.data, self.n)
 
-    def tree_flatten(self):
-        return (self.rows, self.cols, self.data), self.n
-
-    @classmethod
-    def tree_unflatten(cls, n, children):
-        return cls(children[0], children[1], children[2], n)
+    def csr(self):
+        """The matrix as scipy CSR (for the host's sparse LU)."""
+        import scipy.sparse as sp
+        return sp.csr_matrix((np.asarray(self.data), (np.asarray(self.rows), np.asarray(self.cols))),
+                             shape=(self.n, self.n))

@@ -1,5 +1,6 @@
 """Headless Chromium for the report tests: find it (or install Debian's package), load a page, and
-report for every <img> whether it loaded (naturalWidth > 0).
+report for every <img> whether it loaded (naturalWidth > 0), with the page's text as Chromium
+laid it out (``innerText``: what a reader sees, hidden elements left out).
 
 Where Chromium is missing and cannot be installed (not root, no apt-get, no network to the
 package registry) the calling test is skipped with a message that says so and how to fix it.
@@ -28,9 +29,10 @@ window.addEventListener('load', function () {
   var out = imgs.map(function (im) {
     return {id: im.id || '', complete: im.complete, width: im.naturalWidth, height: im.naturalHeight};
   });
+  var text = document.body.innerText;
   var pre = document.createElement('pre');
   pre.id = 'stateworth-image-check';
-  pre.textContent = JSON.stringify(out);
+  pre.textContent = JSON.stringify({images: out, text: text});
   document.body.appendChild(pre);
 });
 </script>
@@ -70,6 +72,12 @@ def ensure_chromium() -> str:
 def image_check(page: Path, binary: str | None = None, timeout: float = 120.0) -> list[dict]:
     """Load ``page`` (a copy with a checking script appended, in the same folder so relative
     links resolve) in headless Chromium; return one ``{id, complete, width, height}`` per image."""
+    return render(page, binary, timeout)["images"]
+
+
+def render(page: Path, binary: str | None = None, timeout: float = 120.0) -> dict:
+    """Load ``page`` in headless Chromium: ``{"images": [{id, complete, width, height}, ...],
+    "text": the page's visible text}``."""
     binary = binary or ensure_chromium()
     page = Path(page).resolve()
     text = page.read_text(encoding="utf-8")

@@ -3,22 +3,20 @@
 The model is the fitness-class scenario shrunk to a few hundred states (2 markets x 4 tenure
 levels x 5 statuses x 3 engagement bands x 2 propensity bands = 240), with random but valid
 tables; ``draws`` adds posterior draws (mixtures of two valid tables, so every draw keeps the
-move rules) for intervals. Starting a server costs a JAX import and compile, so test modules
+move rules) for intervals. Servers are started by the demo's harness
+(``stateworth.clients.harness``); starting one costs a JAX import and compile, so test modules
 share one server each.
 """
 
 from __future__ import annotations
 
-import json
-import os
-import signal
-import subprocess
-import sys
-import threading
-import time
+import urllib.request
 from pathlib import Path
 
 import numpy as np
+from prometheus_client.parser import text_string_to_metric_families
+
+from stateworth.clients.harness import ServerProcess as Harness
 
 ROOT = Path(__file__).resolve().parents[1]
 MODEL = "fitness-tiny"
@@ -99,72 +97,24 @@ def write_artifact(model_dir: Path, artifact: str, seed: int = 0, draws: int = 0
     return m.version
 
 
-class ServerProcess:
-    """``stateworth serve`` in a subprocess on a free loopback port; JSON log lines collected."""
+class ServerProcess(Harness):
+    """The demo's harness with the tests' settings: JAX on the CPU, run from the repository
+    root, three minutes to start."""
 
     def __init__(self, model_dir: Path, *args: str, env: dict | None = None, wait: str = "serving") -> None:
-        cmd = [sys.executable, "-m", "stateworth", "serve", str(model_dir), "--port", "0", *args]
-        e = dict(os.environ)
-        e.update({"PYTHONUNBUFFERED": "1", "JAX_PLATFORMS": "cpu"})
-        e.update(env or {})
-        self.proc = subprocess.Popen(cmd, stderr=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env=e, cwd=ROOT)
-        self.lines: list[str] = []
-        self.events: list[dict] = []
-        self._cv = threading.Condition()
-        threading.Thread(target=self._read, daemon=True).start()
-        self.port = self.wait_for("listening")["port"]
-        self.metrics_port = self.wait_for("listening").get("metrics_port")
-        if wait:
-            self.wait_for(wait)
+        super().__init__(model_dir, *args, env={"JAX_PLATFORMS": "cpu", **(env or {})}, wait=wait, cwd=ROOT,
+                         timeout=180.0)
 
-    def _read(self) -> None:
-        for line in self.proc.stderr:
-            with self._cv:
-                self.lines.append(line)
-                try:
-                    self.events.append(json.loads(line))
-                except ValueError:
-                    pass
-                self._cv.notify_all()
-        with self._cv:
-            self._cv.notify_all()
 
-    def wait_for(self, event: str, timeout: float = 180.0) -> dict:
-        end = time.monotonic() + timeout
-        with self._cv:
-            while True:
-                for ev in self.events:
-                    if ev.get("event") == event:
-                        return ev
-                if self.proc.poll() is not None and not any(ev.get("event") == event for ev in self.events):
-                    raise RuntimeError(f"server exited ({self.proc.returncode}) before '{event}':\n" + "".join(self.lines))
-                left = end - time.monotonic()
-                if left <= 0:
-                    raise TimeoutError(f"no '{event}' from the server:\n" + "".join(self.lines))
-                self._cv.wait(min(left, 0.5))
+def scrape(port: int) -> dict[tuple[str, frozenset], float]:
+    """The samples at http://127.0.0.1:PORT/metrics as read by prometheus_client's own parser
+    (so the exposition is valid text format too): (name, frozenset of label pairs) -> value."""
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=10) as r:
+        text = r.read().decode()
+    return {(s.name, frozenset(s.labels.items())): s.value
+            for family in text_string_to_metric_families(text) for s in family.samples}
 
-    def wait_until(self, ready, timeout: float = 10.0) -> list[dict]:
-        """The events once ``ready(events)`` holds (access lines are written by the server's log
-        writer up to --log-flush-ms after their call); TimeoutError with the log if never."""
-        end = time.monotonic() + timeout
-        with self._cv:
-            while not ready(list(self.events)):
-                left = end - time.monotonic()
-                if left <= 0:
-                    raise TimeoutError("the server's log never showed what the test waits for:\n"
-                                       + "".join(self.lines[-40:]))
-                self._cv.wait(min(left, 0.1))
-            return list(self.events)
 
-    @property
-    def target(self) -> str:
-        return f"127.0.0.1:{self.port}"
-
-    def stop(self, timeout: float = 60.0) -> int:
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-        try:
-            return self.proc.wait(timeout)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            return self.proc.wait()
+def sample(samples: dict[tuple[str, frozenset], float], name: str, **labels: str) -> float | None:
+    """One sample's value from :func:`scrape` (None when absent)."""
+    return samples.get((name, frozenset(labels.items())))

@@ -1,5 +1,6 @@
 """The Python client without JAX on the other side: a small in-process gRPC server that fails
-on purpose checks the retry policy, deadlines, and the mapping of rich status details."""
+on purpose checks the retry policy (gRPC's own, from the channel's service config), deadlines,
+and the mapping of rich status details."""
 
 from __future__ import annotations
 
@@ -11,6 +12,7 @@ import numpy as np
 import pytest
 
 from stateworth.clients import client as cl
+from stateworth.errors import StateworthError
 from stateworth.v1 import valuation_service_pb2 as pb
 from stateworth.v1 import valuation_service_pb2_grpc as vgrpc
 
@@ -21,6 +23,8 @@ class Flaky(vgrpc.ValuationServiceServicer):
         self.fail = 2
         self.seen_metadata: list = []
         self.lock = threading.Lock()
+        self.refused = 0
+        self.streams = 0
 
     def ListModels(self, request, context):
         with self.lock:
@@ -33,6 +37,8 @@ class Flaky(vgrpc.ValuationServiceServicer):
 
     def GetValue(self, request, context):
         from stateworth.server.errors import rich_status
+        with self.lock:
+            self.refused += 1
         context.abort_with_status(rich_status(grpc.StatusCode.INVALID_ARGUMENT, "'x' is not a level of market",
                                               "market"))
 
@@ -42,6 +48,12 @@ class Flaky(vgrpc.ValuationServiceServicer):
         r.values.extend([float(x) for x in cols["a"]])
         r.unit = ",".join(cols["b"])
         return r
+
+    def StreamValues(self, request_iterator, context):
+        with self.lock:
+            self.streams += 1
+        for _ in request_iterator:
+            context.abort(grpc.StatusCode.UNAVAILABLE, "starting")
 
     def GetModel(self, request, context):
         import time
@@ -72,6 +84,42 @@ def test_unavailable_is_retried_with_backoff(fake):
         with pytest.raises(cl.Unavailable) as e:
             c.list_models()
     assert svc.calls == 3 and e.value.code == grpc.StatusCode.UNAVAILABLE
+
+
+def test_the_channel_retries_unavailable_until_ok(fake):
+    # gRPC's retry design (docs/references.md, gRFC A6): each retried attempt carries the header
+    # grpc-previous-rpc-attempts, so the attempts the server saw were made by the channel itself
+    svc, target = fake
+    svc.calls, svc.fail, svc.seen_metadata = 0, 3, []
+    with cl.Client(target, retries=4, backoff=0.01, token="tok") as c:
+        assert c.list_models() == pb.ListModelsResponse()
+    assert svc.calls == 4
+    assert [m.get("grpc-previous-rpc-attempts") for m in svc.seen_metadata] == [None, "1", "2", "3"]
+    assert all(m["authorization"] == "Bearer tok" for m in svc.seen_metadata)
+
+
+def test_only_unavailable_on_unary_calls_is_retried(fake):
+    svc, target = fake
+    svc.refused = svc.streams = 0
+    with cl.Client(target, retries=4, backoff=0.01) as c:
+        with pytest.raises(cl.InvalidArgument):
+            c.value("m", {"market": "x"})
+        with pytest.raises(cl.Unavailable):
+            list(c.stream_values("m", [{"a": ["x"]}, {"a": ["y"]}]))
+    assert svc.refused == 1 and svc.streams == 1
+    svc.calls, svc.fail = 0, 10
+    with cl.Client(target, retries=0) as c:
+        with pytest.raises(cl.Unavailable):
+            c.list_models()
+    assert svc.calls == 1
+
+
+def test_a_retry_policy_grpc_would_not_keep_is_refused():
+    for kw, where in (({"retries": 5}, "retries"), ({"retries": -1}, "retries"), ({"backoff": 0.0}, "backoff"),
+                      ({"backoff": 3.0, "max_backoff": 2.0}, "backoff")):
+        with pytest.raises(StateworthError) as e:
+            cl.Client("127.0.0.1:1", **kw)
+        assert e.value.where == where
 
 
 def test_field_violations_reach_the_exception(fake):

@@ -10,6 +10,7 @@ from pathlib import Path
 
 import pytest
 
+from help_examples import DEMO_OUT, demo_inputs
 from stateworth.clients.cli import main
 
 MINI = Path(__file__).resolve().parent / "data" / "mini_fitness.toml"
@@ -44,6 +45,9 @@ def test_demo_end_to_end_with_server(tmp_path, capsys):
         assert "No fit diagnostics" not in page
     log = (out / "server.log").read_text()
     assert '"event":"serving"' in log.replace(" ", "")
+    # every path of the demo's output that a command's help example reads is there
+    wanted = demo_inputs()
+    assert wanted and all((out / Path(rel).relative_to(DEMO_OUT)).exists() for rel in wanted), sorted(wanted)
 
 
 def test_demo_refuses_unrelated_output_folder(tmp_path, capsys):

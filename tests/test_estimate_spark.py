@@ -43,8 +43,8 @@ def test_spark_counts_equal_duckdb(tmp_path):
     pytest.importorskip("pyspark")
     spec = parse_spec(tomllib.loads(TENURE))
     p, m = write_simulation(simulate_panel(spec, 3000, 14, seed=6), tmp_path / "p.parquet")
-    a = fit_panel(spec, str(p), str(m), FitOptions(draws=5))
-    b = fit_panel(spec, str(p), str(m), FitOptions(draws=5, engine="spark"))
+    a = fit_panel(spec, str(p), str(m), FitOptions(draws=20))
+    b = fit_panel(spec, str(p), str(m), FitOptions(draws=20, engine="spark"))
     assert a.joint.total > 1000
     np.testing.assert_array_equal(a.joint.cur, b.joint.cur)
     np.testing.assert_array_equal(a.joint.nxt, b.joint.nxt)

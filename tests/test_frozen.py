@@ -18,6 +18,7 @@ from stateworth.solver.preconditioner import two_level
 from test_solver import random_model
 
 solve_module = importlib.import_module("stateworth.solver.solve")
+precond_module = importlib.import_module("stateworth.solver.preconditioner")
 
 
 @pytest.fixture(scope="module")
@@ -134,7 +135,7 @@ def test_frozen_space_cuts_iterations_where_clusters_differ(monkeypatch):
     ref = np.linalg.solve(np.eye(m.n_states) - m.beta * m.csr().toarray(), np.asarray(m.rewards["rev"]))
     runs = {}
     for frozen in (False, True):
-        monkeypatch.setattr(solve_module, "two_level",
+        monkeypatch.setattr(precond_module, "two_level",
                             lambda *a, frozen_=frozen, **k: two_level(*a, **{**k, "frozen": frozen_}))
         for transpose in (False, True):
             s = solve_module.solve(m, "rev", method="gmres", tol=1e-10, transpose=transpose,

@@ -30,6 +30,7 @@ from hypothesis import strategies as st
 
 from stateworth.rules import compile_model, parse_spec
 from stateworth.rules.factors import factors_of, masked_uniform
+from stateworth.rules.steps import Contract, CounterGather, Finish, Offsets, PairStep
 
 MAX_STATES = 400
 SETTINGS = settings(max_examples=25, deadline=None, derandomize=True,
@@ -312,9 +313,10 @@ def test_rule_checker_is_not_vacuous(monkeypatch):
     with pytest.raises(AssertionError, match="mass on a move from out"):
         _check_rules(SMALL, model, model.csr())
 
-    import stateworth.rules.operator as operator
-    real = operator.counter_index
-    monkeypatch.setattr(operator, "counter_index", lambda s, a: np.minimum(real(s, a) + 1, 2).astype(np.int32))
+    # the check reads the explicit matrix, so the broken counter goes where that is built
+    import stateworth.rules.explicit as explicit
+    real = explicit.counter_index
+    monkeypatch.setattr(explicit, "counter_index", lambda s, a: np.minimum(real(s, a) + 1, 2).astype(np.int32))
     model = compile_model(spec, tables)
     with pytest.raises(AssertionError, match="counter age"):
         _check_rules(SMALL, model, model.csr())
@@ -329,7 +331,7 @@ def test_einsum_offsets_and_gather_steps_match_csr(case, limits):
     paths grids with large axes take); the apply and its transpose still equal the CSR matrix."""
     from unittest import mock
 
-    import stateworth.rules.operator as operator_module
+    import stateworth.rules.grid_operator as operator_module
 
     spec_dict, seed = case
     pair_limit, share = limits
@@ -344,11 +346,12 @@ def test_einsum_offsets_and_gather_steps_match_csr(case, limits):
     with mock.patch.object(operator_module, "PAIR_LIMIT", pair_limit), \
             mock.patch.object(operator_module, "OFFSET_SHARE", share):
         model = compile_model(spec, random_tables(spec, seed))
-    kinds = [s.kind for s in model.operator.plan.steps]
+        model.operator  # built on first use: here, under the lowered limits
+    kinds = {type(s) for s in model.operator.plan.steps}
     if pair_limit == 0:
-        assert "pairwise" not in kinds
+        assert PairStep not in kinds
     if share == 0.0:
-        assert "offsets" not in kinds
+        assert Offsets not in kinds
     P = model.csr()
     rng = np.random.default_rng(seed)
     x, y = rng.normal(size=model.n_states), rng.normal(size=model.n_states)
@@ -379,9 +382,9 @@ def test_banded_axis_is_applied_offset_by_offset():
     spec = parse_spec(BANDED)
     model = compile_model(spec, random_tables(spec, 4))
     steps = model.operator.plan.steps
-    off = [s for s in steps if s.kind == "offsets"]
-    assert [s.key for s in off] == ["table.band"] and off[0].extra[3] == (-2, -1, 0, 1)
-    assert "contract" not in [s.kind for s in steps]
+    off = [s for s in steps if isinstance(s, Offsets)]
+    assert [s.key for s in off] == ["table.band"] and off[0].offsets == (-2, -1, 0, 1)
+    assert not any(isinstance(s, Contract) for s in steps)
     P = model.csr()
     rng = np.random.default_rng(1)
     x, y = rng.normal(size=model.n_states), rng.normal(size=model.n_states)
@@ -408,10 +411,10 @@ def test_example_plan_is_pairwise_with_tables_in_step_order():
     spec = parse_spec(tomllib.loads((Path(__file__).resolve().parents[1] / "examples" / "fitness.toml").read_text()))
     model = compile_model(spec, {f.axis: masked_uniform(spec, f) for f in factors_of(spec)})
     steps = model.operator.plan.steps
-    kinds = [s.kind for s in steps]
-    assert kinds.count("pairwise") == len(model.factors) and "contract" not in kinds and "counter" not in kinds
-    assert steps[-1].kind == "finish" and steps[-1].perm == tuple(range(len(steps[-1].perm)))
-    status = [s.extra[0] for s in steps if s.kind == "pairwise" and s.extra[0].axis == spec.status_axis][0]
+    kinds = [type(s) for s in steps]
+    assert kinds.count(PairStep) == len(model.factors) and Contract not in kinds and CounterGather not in kinds
+    assert isinstance(steps[-1], Finish) and steps[-1].perm == tuple(range(len(steps[-1].perm)))
+    status = [s for s in steps if isinstance(s, PairStep) and s.axis == spec.status_axis][0]
     assert [c for c, _ in status.counters] == [a.name for a in model.grid.axes if a.kind == "counter"]
     t = model.tables[spec.status_axis]
     stored = model.operator.arrays[f"table.{spec.status_axis}"]
@@ -440,6 +443,43 @@ def test_counter_maps_and_their_transposes_are_adjoint(size, data):
     np.testing.assert_allclose(np.sum(y * w), np.sum(x * z), rtol=1e-12)
 
 
+@pytest.mark.parametrize("limits", [None, (0, 2.0)])
+def test_each_step_transpose_is_the_adjoint_of_its_apply(limits):
+    """Step by step, on the frames the plan passes along: <apply(x), w> = <x, transpose(w)> (the
+    definition of the transpose; common practice, no source), and the steps in turn give the
+    explicit matrix's ``P x``. With the default limits the example's plan is pair steps, a cycle
+    roll and the finish; with pairs off and offsets allowed (its move rules cover every level)
+    it is offsets, roll, counter gather, einsum and finish: all six kinds."""
+    import tomllib
+    from pathlib import Path
+    from unittest import mock
+
+    import stateworth.rules.grid_operator as operator_module
+    from stateworth.rules.steps import CycleRoll
+
+    spec = parse_spec(tomllib.loads((Path(__file__).resolve().parents[1] / "examples" / "fitness.toml").read_text()))
+    pair_limit, share = limits or (operator_module.PAIR_LIMIT, operator_module.OFFSET_SHARE)
+    with mock.patch.object(operator_module, "PAIR_LIMIT", pair_limit), \
+            mock.patch.object(operator_module, "OFFSET_SHARE", share):
+        model = compile_model(spec, random_tables(spec, 3))
+        op = model.operator  # built on first use: here, under the patched limits
+    steps = op.plan.steps
+    expected = {PairStep, CycleRoll, Finish} if limits is None else {Offsets, CycleRoll, CounterGather, Contract, Finish}
+    assert {type(s) for s in steps} == expected
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=model.n_states)
+    frame = jnp.asarray(x.reshape(op.plan.grid_shape))
+    for step in steps:
+        before = jax.ShapeDtypeStruct(frame.shape, frame.dtype)
+        out = step.apply(op.arrays, frame)
+        w = jnp.asarray(rng.normal(size=out.shape))
+        back = step.transpose(op.arrays, w, before)
+        assert back.shape == frame.shape
+        np.testing.assert_allclose(float(jnp.vdot(out, w)), float(jnp.vdot(frame, back)), rtol=1e-12)
+        frame = out
+    np.testing.assert_allclose(np.asarray(frame).reshape(-1), model.csr() @ x, rtol=0, atol=1e-12)
+
+
 def test_offsets_step_gradient_matches_the_dense_contraction():
     """The marginal values differentiate ``lam . P(T) v`` with respect to the factor tables (a VJP
     of the apply). Through an offsets step that gradient equals the dense einsum's on every entry
@@ -447,7 +487,7 @@ def test_offsets_step_gradient_matches_the_dense_contraction():
     itself checked against finite differences of exact re-solves in tests/test_valuation.py."""
     from unittest import mock
 
-    import stateworth.rules.operator as operator_module
+    import stateworth.rules.grid_operator as operator_module
     from stateworth.estimation.estimate import allowed_mask
 
     spec = parse_spec(BANDED)
@@ -456,14 +496,16 @@ def test_offsets_step_gradient_matches_the_dense_contraction():
     for share in (0.0, 0.5):
         with mock.patch.object(operator_module, "OFFSET_SHARE", share):
             ops[share] = compile_model(parse_spec(BANDED), tables)
-    assert "offsets" in [s.kind for s in ops[0.5].operator.plan.steps]
-    assert "offsets" not in [s.kind for s in ops[0.0].operator.plan.steps]
+            ops[share].operator  # built on first use: here, under the patched share
+    assert any(isinstance(s, Offsets) for s in ops[0.5].operator.plan.steps)
+    assert not any(isinstance(s, Offsets) for s in ops[0.0].operator.plan.steps)
     rng = np.random.default_rng(2)
     n = ops[0.5].n_states
     lam, v = jnp.asarray(rng.normal(size=n)), jnp.asarray(rng.normal(size=n))
 
     def grad(model):
-        f = lambda t: jnp.dot(lam, model.operator.with_tables({"band": t}).mv(v))
+        def f(t):
+            return jnp.dot(lam, model.operator.with_tables({"band": t}).mv(v))
         return np.asarray(jax.grad(f)(jnp.asarray(tables["band"])))
 
     g_off, g_dense = grad(ops[0.5]), grad(ops[0.0])

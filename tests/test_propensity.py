@@ -164,7 +164,7 @@ def test_categorical_key_and_panel_errors(tmp_path):
     df = pd.read_csv(p, dtype=str)
     df.loc[4, "channel"] = ""
     df.to_csv(tmp_path / "empty.csv", index=False)
-    with pytest.raises(PanelError, match=r"row 5, column channel: empty value; a categorical covariate"):
+    with pytest.raises(PanelError, match=r"row 5 \(line 6\), column channel: empty value; a categorical covariate"):
         load_panel(spec, str(tmp_path / "empty.csv"))
     df = pd.read_csv(p, dtype=str)
     df["channel"] = [f"c{i % (MAX_CATEGORIES + 1)}" for i in range(len(df))]

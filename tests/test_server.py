@@ -9,7 +9,6 @@ property-based bad requests. Expected figures come from the valuation library in
 from __future__ import annotations
 
 import json
-import urllib.request
 
 import grpc
 import numpy as np
@@ -17,7 +16,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from serving import MODEL, STATE, ServerProcess, compile_tiny, write_artifact
+from serving import MODEL, STATE, ServerProcess, compile_tiny, sample, scrape, write_artifact
 from stateworth.clients import client as cl
 from stateworth.v1 import admin_service_pb2 as apb
 from stateworth.v1 import valuation_service_pb2 as pb
@@ -32,8 +31,9 @@ MEMBER = dict(STATE, status="solo", tenure="2", engagement="light")
 @pytest.fixture(scope="module")
 def served(tmp_path_factory):
     d = tmp_path_factory.mktemp("models")
-    va = write_artifact(d, "tiny-a", seed=0, draws=6)
-    vb = write_artifact(d, "tiny-b", seed=1, draws=6)  # written last: the default version
+    # 20 draws: the fewest a 90 % interval may use (2 / (1 - 0.9); valuation.answer.draws_needed)
+    va = write_artifact(d, "tiny-a", seed=0, draws=20)
+    vb = write_artifact(d, "tiny-b", seed=1, draws=20)  # written last: the default version
     srv = ServerProcess(d, "--metrics-port", "0", "--max-batch", "5000", "--admin-open")
     yield {"server": srv, "dir": d, "a": va, "b": vb}
     rc = srv.stop()
@@ -51,7 +51,7 @@ def reference():
     """The default version's point Valuer, built here (same tables as the server's; draws are
     left out to keep the test quick, intervals are checked for shape and order only)."""
     from stateworth.valuation import Valuer
-    return Valuer.build(compile_tiny(1, draws=6), draws=False)
+    return Valuer.build(compile_tiny(1, draws=20), draws=False)
 
 
 def _columns(states: list[dict]) -> dict[str, list[str]]:
@@ -88,7 +88,7 @@ def test_list_and_describe_models(served, client):
     assert {s.name: s.unit for s in d.reward_streams} == {"revenue": "EUR", "member_months": "member-months"}
     assert d.currency == "EUR" and d.state_count == 240 and d.content_hash.startswith(d.version)
     assert 0.99 < d.discounting.beta < 1 and d.discounting.period == "month"
-    assert d.solve_statistics.status == "converged" and d.solve_statistics.draw_count == 6
+    assert d.solve_statistics.status == "converged" and d.solve_statistics.draw_count == 20
     pinned = client.get_model(f"models/{MODEL}", served["a"])
     assert pinned.version == served["a"] and not pinned.default_version
 
@@ -169,7 +169,7 @@ def test_transition_change(client, reference):
     assert r.deltas[0] < 0 and r.max_abs_delta >= abs(r.deltas[0])
     assert r.changed_version != r.version and len(r.changed_version) == 12
     assert len(r.lower) == 2 and r.weighted_delta.HasField("interval")
-    assert r.details["change"]["axis"] == "status" and r.details["stats"]["warm_start"]
+    assert r.details["change"]["axis"] == "status" and r.details["stats"]["states_resolved"] > 0
     again = client.transition_change(MODEL, "status", "lapsed", 0.01, when={"status": "solo"}, cohort_columns=cohort,
                                      states=cohort, interval=0.9)
     assert again == r  # answered from the cache, identical
@@ -293,11 +293,27 @@ def test_failed_load_leaves_models_untouched(served, client):
 
 # ---- metrics, logs, command line --------------------------------------------------------------
 def test_metrics_endpoint(served, client):
+    get = "/stateworth.v1.ValuationService/GetValue"
+    before = scrape(served["server"].metrics_port)
     client.value(MODEL, STATE)
-    text = urllib.request.urlopen(f"http://127.0.0.1:{served['server'].metrics_port}/metrics", timeout=10).read().decode()
-    assert 'stateworth_requests_total{method="/stateworth.v1.ValuationService/GetValue",code="OK"}' in text
-    assert 'stateworth_request_seconds_bucket{method="/stateworth.v1.ValuationService/GetValue",le="+Inf"}' in text
-    assert "stateworth_models_loaded 2" in text
+    with pytest.raises(cl.InvalidArgument):
+        client.value(MODEL, dict(STATE, market="nowhere"))
+    after = scrape(served["server"].metrics_port)
+    for code in ("OK", "INVALID_ARGUMENT"):
+        assert sample(after, "stateworth_requests_total", method=get, code=code) == \
+            (sample(before, "stateworth_requests_total", method=get, code=code) or 0) + 1
+    n = sample(after, "stateworth_request_seconds_count", method=get)
+    assert n == (sample(before, "stateworth_request_seconds_count", method=get) or 0) + 2
+    assert sample(after, "stateworth_request_seconds_bucket", method=get, le="+Inf") == n
+    assert sample(after, "stateworth_models_loaded") == 2
+    assert all(sample(after, "stateworth_reloads_total", result=r) is not None for r in ("ok", "failed"))
+    # one registry per server: nothing else (no process or platform collectors, no _created)
+    assert {name for name, _ in after} <= {
+        "stateworth_requests_total", "stateworth_request_seconds_bucket", "stateworth_request_seconds_sum",
+        "stateworth_request_seconds_count", "stateworth_reloads_total", "stateworth_models_loaded",
+        "stateworth_model_generation", "stateworth_work_cache_hits_total", "stateworth_work_cache_misses_total",
+        "stateworth_work_cache_bytes", "stateworth_work_cache_evictions_total", "stateworth_horizon_cache_bytes",
+        "stateworth_horizon_cache_evictions_total"}
 
 
 def test_logs_are_json_and_never_carry_request_contents(served, client):
@@ -326,7 +342,7 @@ def test_query_command(served, capsys):
     assert main(["query", *t, "models"]) == 0
     assert served["b"] in capsys.readouterr().out
     pairs = [f"{k}={v}" for k, v in STATE.items()]
-    assert main(["query", *t, "--json", "value", MODEL, *pairs, "--interval", "0.9"]) == 0
+    assert main(["query", *t, "--json", "value", MODEL, *pairs, "--level", "0.9"]) == 0
     doc = json.loads(capsys.readouterr().out)
     assert doc["version"] == served["b"] and doc["value"]["unit"] == "EUR"
     assert main(["query", *t, "contrast", MODEL, *pairs, "--acquisition", "duo"]) == 0

@@ -57,3 +57,25 @@ def test_limit_deadline_and_cancel_of_a_waiting_job():
     assert ran == []  # the abandoned job never ran
     assert pool.run("after", lambda: 5, Ctx(5.0)) == 5
     pool.shutdown()
+
+
+def test_cache_is_bounded_in_bytes_least_recently_used_first():
+    import numpy as np
+
+    mib = 2**20
+    pool = WorkPool(workers=1, queue=1, cache_bytes=3 * mib + 4096)  # room for three arrays and their headers
+    for k in ("a", "b", "c"):
+        assert pool.run(k, lambda: np.zeros(mib // 8)).nbytes == mib  # 1 MiB each
+    assert pool.cached_entries == 3 and 3 * mib < pool.cached_bytes <= pool.cache_bytes
+    pool.run("a", lambda: None)  # a hit: "a" becomes the most recently used
+    pool.run("d", lambda: np.zeros(mib // 8))
+    assert pool.evictions >= 1 and pool.cached_bytes <= pool.cache_bytes
+    calls = []
+    pool.run("a", lambda: calls.append("a"))  # still cached
+    pool.run("b", lambda: calls.append("b") or np.zeros(1))  # evicted: computed again
+    assert calls == ["b"]
+    # a result larger than the whole bound is answered but never kept
+    big = pool.run("huge", lambda: np.zeros(4 * mib // 8))
+    assert big.nbytes == 4 * mib and pool.cached_bytes <= pool.cache_bytes
+    assert pool.run("huge", lambda: "again") == "again"
+    pool.shutdown()

@@ -18,7 +18,10 @@ import urllib.request
 
 import pytest
 
-from serving import MODEL, ROOT, STATE, ServerProcess, write_artifact
+from prometheus_client.exposition import generate_latest
+from prometheus_client.parser import text_string_to_metric_families
+
+from serving import MODEL, ROOT, STATE, ServerProcess, sample, scrape, write_artifact
 from stateworth.clients import client as cl
 from stateworth.server.supervisor import merge_workers
 
@@ -26,12 +29,30 @@ from stateworth.server.supervisor import merge_workers
 def test_merged_metrics_label_every_sample_and_keep_each_family_together():
     text = ("# HELP a_total A.\n# TYPE a_total counter\na_total{method=\"/x\",code=\"OK\"} 3\n"
             "# TYPE h histogram\nh_bucket{le=\"+Inf\"} 2\nh_sum 0.5\nh_count 2\n# TYPE g gauge\ng 1\n")
-    assert merge_workers([(0, text), (1, text)]) == [
-        "# HELP a_total A.", "# TYPE a_total counter",
-        'a_total{worker="0",method="/x",code="OK"} 3', 'a_total{worker="1",method="/x",code="OK"} 3',
-        "# TYPE h histogram", 'h_bucket{worker="0",le="+Inf"} 2', 'h_sum{worker="0"} 0.5', 'h_count{worker="0"} 2',
-        'h_bucket{worker="1",le="+Inf"} 2', 'h_sum{worker="1"} 0.5', 'h_count{worker="1"} 2',
-        "# TYPE g gauge", 'g{worker="0"} 1', 'g{worker="1"} 1']
+    families = merge_workers([(0, text), (1, text.replace(" 3\n", " 4\n"))])
+    assert [(f.name, f.type, f.documentation) for f in families] == [
+        ("a", "counter", "A."), ("h", "histogram", ""), ("g", "gauge", "")]
+    assert [(s.name, s.labels, s.value) for s in families[0].samples] == [
+        ("a_total", {"worker": "0", "method": "/x", "code": "OK"}, 3),
+        ("a_total", {"worker": "1", "method": "/x", "code": "OK"}, 4)]
+    assert [(s.name, s.labels) for s in families[1].samples] == [
+        ("h_bucket", {"worker": "0", "le": "+Inf"}), ("h_sum", {"worker": "0"}), ("h_count", {"worker": "0"}),
+        ("h_bucket", {"worker": "1", "le": "+Inf"}), ("h_sum", {"worker": "1"}), ("h_count", {"worker": "1"})]
+    # written out, each family once, and read back by the same parser: the text is valid
+    exposed = generate_latest(FamiliesOf(families)).decode()
+    assert exposed.count("# TYPE a_total counter") == exposed.count("# TYPE h histogram") == 1
+    again = {(s.name, tuple(sorted(s.labels.items()))): s.value
+             for f in text_string_to_metric_families(exposed) for s in f.samples}
+    assert again[("a_total", (("code", "OK"), ("method", "/x"), ("worker", "1")))] == 4
+    assert again[("g", (("worker", "0"),))] == 1
+
+
+class FamiliesOf:
+    def __init__(self, families) -> None:
+        self.families = families
+
+    def collect(self):
+        return self.families
 
 
 @pytest.fixture(scope="module")
@@ -108,11 +129,16 @@ def test_metrics_of_both_workers_come_back_labelled(workers):
         _version_at(port)
     with urllib.request.urlopen(f"http://127.0.0.1:{srv.metrics_port}/metrics", timeout=10) as r:
         text = r.read().decode()
-    assert "stateworth_workers_ready 2" in text
-    for k in (0, 1):
-        assert f'stateworth_models_loaded{{worker="{k}"}} 1' in text
     assert text.count("# TYPE stateworth_requests_total counter") == 1
-    assert 'stateworth_requests_total{worker="' in text
+    got = scrape(srv.metrics_port)
+    assert sample(got, "stateworth_workers_ready") == 2
+    get = "/stateworth.v1.ValuationService/GetValue"
+    for k in ("0", "1"):
+        assert sample(got, "stateworth_models_loaded", worker=k) == 1
+        # each worker answered at least the call on its own port
+        assert sample(got, "stateworth_requests_total", worker=k, method=get, code="OK") >= 1
+    own = {"stateworth_workers_ready", "stateworth_worker_restarts_total"}  # the supervisor's
+    assert all("worker" in dict(labels) for name, labels in got if name not in own)
 
 
 def test_ports_in_use_are_refused_in_one_line(workers, tmp_path):
@@ -138,8 +164,7 @@ def test_a_killed_worker_is_started_again_on_its_own_port(workers):
     assert new["worker_port"] == ports[1] == old["worker_port"]
     expected = _version_at(ports[0])
     assert _version_at(ports[1]) == expected
-    with urllib.request.urlopen(f"http://127.0.0.1:{srv.metrics_port}/metrics", timeout=10) as r:
-        assert "stateworth_worker_restarts_total 1" in r.read().decode()
+    assert sample(scrape(srv.metrics_port), "stateworth_worker_restarts_total") == 1
 
 
 def test_sigterm_stops_every_worker(tmp_path):

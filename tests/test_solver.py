@@ -59,7 +59,7 @@ def test_matches_scipy_spsolve(models):
         A = (sp.identity(m.n_states) - m.beta * m.csr()).tocsc()
         R = np.stack([m.rewards[s] for s in m.rewards], axis=1)
         ref = sla.spsolve(A, R)
-        for method in ("dense", "gmres", "value_iteration"):
+        for method in ("dense", "sparse", "gmres", "value_iteration"):
             sol = solve(m, method=method, tol=1e-12)
             assert sol.converged and sol.residual <= 1e-12
             np.testing.assert_allclose(sol.values, ref, rtol=1e-9, atol=1e-9 * np.abs(ref).max())
@@ -70,7 +70,7 @@ def test_transpose_solve_matches_scipy(models):
     mu = np.random.default_rng(0).random(m.n_states)
     A = (sp.identity(m.n_states) - m.beta * m.csr().T).tocsc()
     ref = sla.spsolve(A, mu)
-    for method in ("dense", "gmres"):
+    for method in ("dense", "sparse", "gmres"):
         x = solve(m, mu, method=method, transpose=True, tol=1e-12).value(0)
         np.testing.assert_allclose(x, ref, rtol=1e-9)
 
@@ -206,9 +206,27 @@ def test_flexible_gmres_converges_with_a_changing_preconditioner():
         return jax.jit(lambda b: gmres(lambda v: Md @ v, b, jnp.zeros_like(b), tol=1e-12, restart=30, max_iter=500,
                                        precond=precond, flexible=flexible))(jnp.asarray(b))
 
-    x, it, ap, res, st = run(True)
+    x, it, ap, res, st, _ = run(True)
     assert int(st) == 0 and float(res) <= 1e-12
     np.testing.assert_allclose(np.asarray(x)[:, 0], ref, rtol=1e-9)
     # plain right-preconditioned GMRES assumes one fixed M: its updates lose accuracy, it needs more
     it_plain = int(run(False)[1])
     assert int(it) < it_plain, (int(it), it_plain)
+
+
+def test_a_shared_horizon_cache_bounds_every_model_together():
+    """Scoped views of one HorizonCache (a server's models) share its byte bound; keys of
+    different scopes never collide."""
+    import numpy as np
+
+    from stateworth.valuation.solved import HorizonCache
+
+    shared = HorizonCache(max_bytes=3 * 8000)
+    a, b = shared.scoped("model-a"), shared.scoped("model-b")
+    assert a.get(("point", 5), lambda: np.ones(1000)).sum() == 1000
+    assert b.get(("point", 5), lambda: np.zeros(1000)).sum() == 0  # same key, other model
+    assert a.get(("point", 5), lambda: np.zeros(1000)).sum() == 1000  # a hit
+    for h in range(6, 10):
+        b.get(("point", h), lambda: np.zeros(1000))
+    st = shared.stats()
+    assert st["bytes"] <= 3 * 8000 and st["entries"] == 3 and st["evictions"] == 3

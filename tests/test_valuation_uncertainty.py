@@ -16,6 +16,7 @@ from scipy.stats import binom
 
 from stateworth.rules import compile_model
 from stateworth.solver import solve
+from stateworth.errors import QueryError
 from stateworth.valuation import Valuer, percentile_interval
 from test_valuation import PROSPECT, dirichlet_draws, tiny_spec, tiny_tables
 
@@ -62,9 +63,11 @@ def test_coverage_of_nominal_intervals():
 
 
 def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
-    # lower the dense threshold so the draws of this small model go through the batched,
-    # preconditioned GMRES that large models use
-    import stateworth.valuation.draws as draws_mod
+    # lower the sparse and dense thresholds so the draws of this small model go through the
+    # batched, preconditioned GMRES that large models use
+    import stateworth.solver.sparse as sparse_mod
+    import stateworth.valuation.batched as draws_mod
+    monkeypatch.setattr(sparse_mod, "BLOCK_MAX", 0)
     monkeypatch.setattr(draws_mod, "DENSE_MAX", 10)
     spec = tiny_spec(markets=2, tenure=3)
     t = tiny_tables(spec, seed=2)
@@ -76,10 +79,25 @@ def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
         ref = solve(md, list(v.streams), method="dense").values
         got = v.draw_values(np.arange(model.n_states), "revenue")[d]
         np.testing.assert_allclose(got, ref[:, 0], rtol=1e-8)
-    a = v.acquisition(PROSPECT, "solo", level=0.9)
+    # 6 draws hold one draw in each tail of a 60 % interval, not of a 90 % one (2 / (1 - level)
+    # draws are needed; docs/references.md: common practice, no source)
+    a = v.contrast(PROSPECT, {**PROSPECT, "status": "solo"}, level=0.6)
     each = v.draw_values(np.array([v.index({**PROSPECT, "status": "solo"}), v.index(PROSPECT)]), "revenue")
-    lo, hi = np.quantile(each[:, 0] - each[:, 1], [0.05, 0.95])
+    lo, hi = np.quantile(each[:, 0] - each[:, 1], [0.2, 0.8])
     assert a.interval == pytest.approx((lo, hi), rel=1e-12)
+    # an acquisition lands in the mix each draw's own engagement table gives a joiner
+    acq = v.acquisition(PROSPECT, "solo", level=0.6)
+    eng = model.draws.get("engagement")
+    lv = model.spec.axis_levels("engagement")
+    per = []
+    for d in range(v.n_draws):
+        T = (eng[d] if eng is not None else model.tables["engagement"])[2, lv.index(PROSPECT["engagement"])]
+        dst = np.array([v.index({**PROSPECT, "status": "solo", "engagement": e}) for e in lv])
+        per.append(T @ v.draw_values(dst, "revenue")[d] - v.draw_values(np.array([v.index(PROSPECT)]), "revenue")[d, 0])
+    assert acq.interval == pytest.approx(tuple(np.quantile(per, [0.2, 0.8])), rel=1e-10)
+    with pytest.raises(QueryError) as ei:
+        v.acquisition(PROSPECT, "solo", level=0.9)
+    assert ei.value.field == "level" and "at least 20 posterior draws" in str(ei.value)
     assert v.draw_stats["preconditioned"]
     # horizon values of the draws: H applications of each draw's operator
     md = model.with_tables({a: model.draws[a][5] for a in model.draws})
@@ -90,7 +108,7 @@ def test_batched_gmres_draws_equal_separate_solves(monkeypatch):
 def test_draws_in_chunks_reuse_one_compile_and_pad_the_last_chunk(monkeypatch):
     # 5 draws in chunks of 2: three calls of one compiled computation, the last chunk padded
     # with its last draw; every draw equals its own dense solve (numpy LU on the explicit matrix)
-    import stateworth.valuation.draws as draws_mod
+    import stateworth.valuation.batched as draws_mod
     monkeypatch.setattr(draws_mod, "DENSE_MAX", 10)
     monkeypatch.setattr(draws_mod, "DRAW_CHUNK", 2)
     spec = tiny_spec(markets=2, tenure=3)

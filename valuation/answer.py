@@ -21,10 +21,26 @@ import numpy as np
 from stateworth.caution import CAUTION  # noqa: F401  (re-exported: every answer carries it)
 
 
+def draws_needed(level: float) -> int:
+    """Fewest draws for an equal-tailed percentile interval at ``level``: ``2 / (1 - level)``, so
+    that each tail of ``(1 - level) / 2`` holds at least one draw (20 at 90 %, 40 at 95 %, 200
+    at 99 %). Fewer, and an end of the interval is the extreme draw itself, whatever the level
+    (common practice, no source; Efron & Tibshirani 1993 advise far more draws, ~1,000, for
+    percentile intervals to settle)."""
+    return int(np.ceil(2.0 / (1.0 - float(level)) - 1e-9))
+
+
 def percentile_interval(samples: np.ndarray, level: float, axis: int = 0) -> tuple[np.ndarray, np.ndarray]:
     """Equal-tailed percentile interval of ``samples`` along ``axis``: the ``(1 - level) / 2`` and
-    ``(1 + level) / 2`` quantiles (Efron & Tibshirani's percentile method)."""
+    ``(1 + level) / 2`` quantiles (Efron & Tibshirani's percentile method). Refused (QueryError,
+    field ``level``) with fewer draws than :func:`draws_needed`."""
     a = np.asarray(samples, dtype=np.float64)
+    need = draws_needed(level)
+    if a.shape[axis] < need:
+        from stateworth.errors import QueryError
+
+        raise QueryError(f"a {level:.0%} interval needs at least {need} posterior draws (2 / (1 - level)) and the "
+                         f"model has {a.shape[axis]}; ask a lower level or refit with more draws", field="level")
     lo = np.quantile(a, (1.0 - level) / 2.0, axis=axis)
     hi = np.quantile(a, (1.0 + level) / 2.0, axis=axis)
     return lo, hi

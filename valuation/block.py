@@ -17,7 +17,6 @@ import numpy as np
 
 from stateworth.rules.factors import Factor
 from stateworth.rules.grid import Axis, Grid
-from stateworth.rules.operator import make_operator
 
 
 @dataclasses.dataclass(frozen=True)
@@ -64,8 +63,7 @@ def restrict(model, block: Block, tables: Mapping[str, np.ndarray], rewards: Map
     given full-grid ``rewards`` vectors sliced to its states. Spec, beta and metadata are the
     full model's; the hash is left as the full model's (the block is a computational device)."""
     if block.full:
-        op = model.operator.with_tables(dict(tables))
-        return dataclasses.replace(model, tables=dict(tables), operator=op, rewards=dict(rewards), draws={})
+        return model.replace(tables=dict(tables), rewards=dict(rewards) or None, draws={}, reuse_plan=True)
     grid = Grid(tuple(Axis(a.name, a.kind, tuple(a.levels[i] for i in block.levels[a.name]))
                       if a.kind == "fixed" else a for a in model.grid.axes))
     factors, sub = [], {}
@@ -74,6 +72,6 @@ def restrict(model, block: Block, tables: Mapping[str, np.ndarray], rewards: Map
         nf = Factor(f.axis, f.given, shape + (f.shape[-1],))
         factors.append(nf)
         sub[f.axis] = slice_table(model, f, np.asarray(tables[f.axis]), block)
-    op = make_operator(model.spec, grid, factors, sub, reuse_plan=True)
-    return dataclasses.replace(model, grid=grid, factors=factors, tables=sub, operator=op,
-                               rewards={k: np.asarray(v)[block.states] for k, v in rewards.items()}, draws={})
+    return model.replace(grid=grid, factors=factors, tables=sub,
+                         rewards={k: np.asarray(v)[block.states] for k, v in rewards.items()} or None, draws={},
+                         reuse_plan=True)

@@ -1,103 +1,26 @@
-"""Posterior draws of the factor tables, solved as one batched computation.
+"""Posterior draws of the factor tables: validated, and solved by the method the point solve uses.
 
 ``model.draws`` maps a random axis to ``(D, *table shape)``: D draws of that factor's table
 (e.g. from its Dirichlet posterior). Draw d is the model with every drawn axis's table replaced
 by its d-th draw. Its value functions solve ``(I - beta P_d) V_d = r_d``; ``r_d`` depends on the
 draw too where a stream has one-off amounts on status moves (their expectation uses P_d).
 
-The D systems are solved by one jitted computation, ``lax.map`` over the draws (``batch`` draws
-vectorised at a time: one on CPU, more on accelerators), each a restarted GMRES on the draw's operator (``op.with_tables(tables_d)``),
-warm-started from the point model's values and right-preconditioned with the point model's
-two-level preconditioner, whose frozen-cluster correction (:mod:`stateworth.solver.frozen`) is
-rebuilt from each draw's tables inside the computation (a few block inverses). Shared by all draws: the compiled operator structure and solver code
-(compiled once), the preconditioner (a draw's own was measured to need the same number of
-iterations on the reference grids, at extra cost), the start. Not repeated per draw: compiling
-a model, re-validating its tables, building a preconditioner, dispatching a solve. For small grids
-(``n <= DENSE_MAX``) each draw is a dense LU solve instead.
+:func:`solve_draw_values` picks the method as :func:`stateworth.solver.solve.choose_method` does
+for the point model: a sparse LU per draw on the host for small and medium grids
+(:func:`sparse_draws`, no JAX), else one batched, preconditioned GMRES computation on the
+structured operator (:mod:`.batched`). Imports no JAX itself.
 """
 
 from __future__ import annotations
 
-import collections
-import threading
 import time
-from dataclasses import dataclass
-from functools import partial
-from typing import Any, Callable, Mapping, Sequence
+from typing import Mapping, Sequence
 
-import jax
-import jax.numpy as jnp
 import numpy as np
 
-from stateworth.errors import ConvergenceError, QueryError
-from stateworth.rules.rewards import period_cash, transition_amounts
-from stateworth.solver.frozen import frozen_coarse
-from stateworth.solver.gmres import gmres
-from stateworth.solver.horizon import horizon_values
-from stateworth.solver.preconditioner import low_precision, two_level
 from stateworth import config
-
-#: grids up to this many states solve each draw densely
-DENSE_MAX = 800
-#: smoothing applies per preconditioner call for draws: deeper than a single solve's (10) since a
-#: draw's tables are rough along the counters where the point model's are smooth; measured at
-#: 3.6 x 10^5 states, 1e-8: 10, 16, 24, 32 applies took 20, 14, 11, 9 iterations and 0.44, 0.35,
-#: 0.32, 0.36 s a draw
-DRAW_SMOOTH = 24
-#: GMRES restart length for draws: with that smoothing a draw takes ~11 iterations, and a shorter
-#: basis is less fresh memory per draw (20 against 40: 0.29-0.37 against 0.35-0.48 s a draw at
-#: 3.6 x 10^5 states, same iterations)
-DRAW_RESTART = 20
-#: bytes of Krylov bases in flight per batch (restart + 1 vectors per draw and column)
-BATCH_BYTES = 1 << 30
-#: draws per compiled call (at least one batch): the drawn tables of one chunk are on the
-#: device at a time (at 3.6 x 10^5 states a status table is 14 MB a draw, 2.9 GB for 200), and
-#: every chunk reuses the one compiled computation (the last chunk is padded with its last draw)
-DRAW_CHUNK = 8
-
-
-@dataclass(frozen=True)
-class RewardParts:
-    """``r = base + scale * sum_j mask_j * (P cols_j)``: a stream's Bellman reward as a function of
-    the operator (see rules/rewards.py). ``base`` ``(n,)``; ``cols``/``masks`` ``(n, m)`` with m the
-    number of status levels that carry one-off amounts (m may be 0)."""
-
-    base: np.ndarray
-    cols: np.ndarray
-    masks: np.ndarray
-    scale: float
-
-
-def reward_parts(model, stream: str) -> RewardParts:
-    spec, grid, beta = model.spec, model.grid, model.beta
-    st = None if stream == "member_months" else spec.rewards[stream]
-    c = period_cash(spec, grid, st)
-    a = transition_amounts(spec, st)
-    codes = grid.codes()[grid.position(spec.status_axis)]
-    rows = [i for i in range(a.shape[0]) if np.any(a[i] != 0)]
-    cols = np.stack([a[i][codes] for i in rows], axis=1) if rows else np.zeros((grid.size, 0))
-    masks = np.stack([(codes == i).astype(np.float64) for i in rows], axis=1) if rows else np.zeros((grid.size, 0))
-    start = spec.model.discount.cash == "start"
-    return RewardParts(base=c if start else beta * c, cols=cols, masks=masks, scale=beta)
-
-
-def slice_parts(parts: RewardParts, states: np.ndarray) -> RewardParts:
-    """The reward parts restricted to ``states`` (for a block sub-model)."""
-    return RewardParts(base=parts.base[states], cols=parts.cols[states], masks=parts.masks[states], scale=parts.scale)
-
-
-@jax.jit
-def _reward_jit(op, base, cols, masks, scale):
-    if cols.shape[1] == 0:
-        return base
-    return base + scale * jnp.sum(masks * op.mv(cols), axis=1)
-
-
-def rewards_on(op, parts: Sequence[RewardParts]) -> jax.Array:
-    """``(n, k)`` rewards of the streams ``parts`` under operator ``op``."""
-    config.float64()
-    return jnp.stack([_reward_jit(op, jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale)
-                      for p in parts], axis=1)
+from stateworth.errors import ConvergenceError, QueryError
+from stateworth.valuation.parts import RewardParts
 
 
 def stacked_tables(model, draws: Mapping[str, np.ndarray] | None = None) -> tuple[dict[str, np.ndarray], int]:
@@ -121,206 +44,93 @@ def stacked_tables(model, draws: Mapping[str, np.ndarray] | None = None) -> tupl
     return out, int(D or 0)
 
 
-def point_preconditioner(model, transpose: bool = False):
-    """The solver's two-level preconditioner for the point model (None for dense-sized grids).
-
-    Built once and shared by every draw: a draw's operator differs from the point model's by
-    sampling noise, so the point model's coarse inverse still captures its slow modes."""
-    config.float64()
-    if model.grid.size <= DENSE_MAX:
-        return None
-    return two_level(model, model.beta, transpose=transpose, dtype=jnp.float32, frozen=True, smooth=DRAW_SMOOTH)
+# ---- one entry point for every method ------------------------------------------------------
 
 
-def _batch_size(n: int, k: int, restart: int, D: int) -> int:
-    """Draws vectorised at a time. On CPU one (sequential inside the one computation): a batch
-    dimension defeats XLA's fusion of the operator apply, measured 4x slower per draw at 10^4
-    states with 16 draws vectorised; on accelerators as many as ``BATCH_BYTES`` allow."""
-    if jax.default_backend() == "cpu":
-        return 1
-    per = 8 * n * k * (2 * restart + 8)
-    return int(max(1, min(D, BATCH_BYTES // max(per, 1))))
+def _parts_rhs(P, parts: Sequence[RewardParts]) -> np.ndarray:
+    """Rewards ``(n, k)`` of ``parts`` under the explicit matrix ``P`` (scipy)."""
+    cols = []
+    for p in parts:
+        r = np.asarray(p.base, dtype=np.float64)
+        if p.cols.shape[1]:
+            r = r + p.scale * np.sum(p.masks * (P @ p.cols), axis=1)
+        cols.append(r)
+    return np.stack(cols, axis=1)
 
 
-@partial(jax.jit, static_argnames=("tol", "restart", "max_iter", "batch", "transpose", "has_pc"))
-def _gmres_draws(op, pc, stacked, rhs, x0, beta, base, *, tol, restart, max_iter, batch, transpose, has_pc):
-    """lax.map over draws of GMRES on (I - beta P_d) x = rhs_d; rhs ``(D, n, k)``. ``base``: the
-    point model's tables, for the axes a draw leaves as they are."""
+def sparse_draws(model, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts], *, tol: float = 1e-10,
+                 transpose: bool = False, horizon: int | None = None) -> tuple[np.ndarray, dict]:
+    """Every draw solved on the host by a sparse LU per fixed block (:mod:`stateworth.solver.sparse`):
+    the explicit matrix of a draw is one gather and product per factor on a pattern enumerated once
+    for the point tables and all draws (:func:`stateworth.rules.explicit.pattern`). With
+    ``horizon``, the H-period values instead (H sparse products per draw). Returns
+    ``(X (D, n, k), stats)``; ConvergenceError if a draw fails."""
+    import scipy.sparse as sp
 
-    def one(args):
-        tables, b = args
-        opd = op.with_tables(tables)
-        A = opd.transpose() if transpose else opd
+    from stateworth.rules.explicit import pattern
+    from stateworth.solver.result import Status
+    from stateworth.solver.sparse import BlockSystem, fixed_blocks
 
-        def matvec(v):
-            return v - beta * A.mv(v)
-
-        pcd = pc
-        if has_pc and pc.frozen is not None:
-            # the frozen clusters' stay probabilities are what a draw changes most along the
-            # counters, so each draw gets its own (cheap, block-diagonal) cluster correction
-            pcd = pc.with_frozen(frozen_coarse(pc.frozen.layout, {**base, **tables}, beta, transpose=transpose,
-                                               dtype=jnp.float32))
-        if has_pc:
-            # the solver's float32 preconditioner under flexible GMRES, as in a single solve
-            return gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter,
-                         precond=low_precision(pcd, A, A.astype(jnp.float32), beta), precond_cost=pcd.cost,
-                         flexible=True, z_dtype=jnp.float32)
-        x, it, ap, res, st = gmres(matvec, b, x0, tol=tol, restart=restart, max_iter=max_iter)
-        return x, it, ap, res, st
-
-    return jax.lax.map(one, (stacked, rhs), batch_size=batch)
-
-
-@partial(jax.jit, static_argnames=("transpose",))
-def _dense_draws(op, stacked, rhs, beta, *, transpose):
-    n = rhs.shape[1]
-
-    def one(args):
-        tables, b = args
-        P = op.with_tables(tables).mv(jnp.eye(n))
-        A = jnp.eye(n) - beta * (P.T if transpose else P)
-        x = jnp.linalg.solve(A, b)
-        res = jnp.max(jnp.abs(A @ x - b)) / jnp.maximum(jnp.max(jnp.abs(b)), 1e-300)
-        return x, res
-
-    return jax.lax.map(one, (stacked, rhs), batch_size=min(rhs.shape[0], max(1, (1 << 27) // (8 * n * n))))
-
-
-@jax.jit
-def _rhs_draws(op, stacked, parts_arrays):
-    """Rewards of every draw ``(D, n, k)``; parts_arrays: (base, cols, masks, scale) per stream."""
-
-    def one(tables):
-        opd = op.with_tables(tables)
-        out = []
-        for base, cols, masks, scale in parts_arrays:
-            r = base
-            if cols.shape[1]:
-                r = r + scale * jnp.sum(masks * opd.mv(cols), axis=1)
-            out.append(r)
-        return jnp.stack(out, axis=1)
-
-    return jax.lax.map(one, stacked)
-
-
-def rewards_for_draws(op, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts]) -> jax.Array:
-    """Rewards ``(D, n, k)`` of the streams ``parts`` under each draw's operator."""
-    config.float64()
-    arrays = tuple((jnp.asarray(p.base), jnp.asarray(p.cols), jnp.asarray(p.masks), p.scale) for p in parts)
-    return _rhs_draws(op, {k: jnp.asarray(v) for k, v in stacked.items()}, arrays)
-
-
-def draw_rewards(model, stacked: Mapping[str, np.ndarray], streams: Sequence[str]) -> jax.Array:
-    """Rewards ``(D, n, k)`` of the model's ``streams`` under each draw."""
-    config.float64()
-    return rewards_for_draws(model.operator, stacked, [reward_parts(model, s) for s in streams])
-
-
-_COMPILED: "collections.OrderedDict[tuple, Any]" = collections.OrderedDict()
-_COMPILED_MAX = 8
-_COMPILED_LOCK = threading.Lock()  # the server's solve pool calls from several threads
-
-
-def compiled(fn: Callable, args: tuple, static: Mapping[str, Any]) -> tuple[Callable, float]:
-    """``fn`` (a jitted function) compiled ahead of time for ``args``' shapes and the static
-    arguments, kept in a small cache; returns (executable taking ``args``, seconds spent
-    compiling now: 0 on a cache hit). Lets a caller run many same-shaped chunks on one compile
-    and report the compile time apart from the solve time."""
-    leaves, tree = jax.tree_util.tree_flatten(args)
-    key = (fn, tree, tuple((np.shape(x), str(getattr(x, "dtype", type(x).__name__)), getattr(x, "weak_type", None))
-                           for x in leaves), tuple(sorted(static.items())))
-    with _COMPILED_LOCK:
-        exe = _COMPILED.get(key)
-        if exe is not None:
-            _COMPILED.move_to_end(key)
-            return exe, 0.0
     t0 = time.perf_counter()
-    exe = fn.lower(*args, **static).compile()
-    seconds = time.perf_counter() - t0
-    with _COMPILED_LOCK:
-        _COMPILED[key] = exe
-        while len(_COMPILED) > _COMPILED_MAX:
-            _COMPILED.popitem(last=False)
-    return exe, seconds
-
-
-def solve_draws(model, stacked: Mapping[str, np.ndarray],
-                rhs: np.ndarray | jax.Array | Callable[[Mapping[str, jax.Array]], jax.Array], x0: np.ndarray, *,
-                tol: float = 1e-10, transpose: bool = False, restart: int = DRAW_RESTART, max_iter: int = 3000,
-                batch: int | None = None) -> tuple[np.ndarray, dict]:
-    """Solve ``(I - beta P_d) X_d = rhs_d`` (or the transpose) for every draw d.
-
-    ``stacked``: ``{axis: (D, *shape)}``; ``rhs``: ``(D, n, k)``, or a function of a chunk's
-    drawn tables ``{axis: (m, *shape)}`` giving its ``(m, n, k)`` right-hand sides (so that only
-    one chunk's tables and rewards are in memory at a time); ``x0``: ``(n, k)`` shared start;
-    ``batch``: draws vectorised at a time (default: see :func:`_batch_size`). Draws go through
-    one compiled computation in chunks of :data:`DRAW_CHUNK` (stats: ``compile_seconds``, the
-    one-off compile, and ``solve_seconds``). Returns ``(X (D, n, k), stats)``; raises
-    ConvergenceError if any draw failed."""
-    config.float64()
     D = int(next(iter(stacked.values())).shape[0]) if stacked else 0
-    rhs_of = rhs if callable(rhs) else None
-    if rhs_of is None:
-        rhs = jnp.asarray(rhs)
-        D = rhs.shape[0]
-    n, k = np.shape(x0)
-    beta = jnp.float64(model.beta)
-    if n <= DENSE_MAX:
-        tabs = {a: jnp.asarray(v) for a, v in stacked.items()}
-        if rhs_of is not None:
-            rhs = rhs_of(tabs)
-        x, res = _dense_draws(model.operator, tabs, rhs, beta, transpose=transpose)
-        res = float(jnp.max(res))
-        stats = {"method": "dense", "draws": D, "residual": res}
-        if not np.isfinite(res) or res > max(1e3 * tol, 1e-8):
-            raise ConvergenceError(f"dense draw solves left relative residual {res:.3g}", stats=stats)
-        return np.asarray(x), stats
-    if D == 0:
-        return np.empty((0, n, k)), {"method": "gmres", "draws": 0, "compile_seconds": 0.0, "solve_seconds": 0.0}
-    b = min(batch or _batch_size(n, k, restart, D), D)
-    chunks = -(-D // max(DRAW_CHUNK, b))
-    size = -(-(-(-D // chunks)) // b) * b  # D spread evenly over the chunks, in whole batches
-    pc = point_preconditioner(model, transpose)
-    base = {a: jnp.asarray(t) for a, t in model.tables.items() if a not in stacked}
-    static = dict(tol=tol, restart=restart, max_iter=max_iter, batch=b, transpose=transpose, has_pc=pc is not None)
-    x0j, betaj = jnp.asarray(x0), beta
+    n, k = model.n_states, len(parts)
     X = np.empty((D, n, k))
-    it, ap, res, st = (np.empty(D, dtype=np.int64), np.empty(D, dtype=np.int64), np.empty(D), np.empty(D, dtype=np.int64))
-    compile_s, t_start = 0.0, time.perf_counter()
-    for s0 in range(0, D, size):
-        m = min(size, D - s0)
-        idx = np.minimum(np.arange(s0, s0 + size), D - 1)  # the last chunk repeats its last draw
-        tabs = {a: jnp.asarray(np.asarray(v)[idx]) for a, v in stacked.items()}
-        args = (model.operator, pc, tabs, rhs_of(tabs) if rhs_of is not None else rhs[idx], x0j, betaj, base)
-        exe, c = compiled(_gmres_draws, args, static)
-        compile_s += c
-        got = [np.asarray(y) for y in exe(*args)]
-        X[s0:s0 + m] = got[0][:m]
-        for out, g in zip((it, ap, res, st), got[1:]):
-            out[s0:s0 + m] = g[:m]
-    stats = {"method": "gmres", "draws": D, "batch": b, "chunk": size, "preconditioned": pc is not None,
-             "iterations_total": int(np.sum(it)), "iterations_max": int(np.max(it)),
-             "operator_applies": int(np.sum(ap)), "residual": float(np.max(res)), "compile_seconds": compile_s,
-             "solve_seconds": time.perf_counter() - t_start - compile_s}
-    if np.any(st != 0):
-        bad = int(np.argmax(st != 0))
-        raise ConvergenceError(f"GMRES failed on posterior draw {bad} (status {int(st[bad])}, relative residual "
-                               f"{float(res[bad]):.3g}); loosen tol or check the draws", stats=stats)
-    return X, stats
+    if D == 0:
+        return X, {"method": "sparse", "draws": 0, "seconds": 0.0}
+    pat = pattern(model.spec, model.grid, model.factors, [model.tables, dict(stacked)])
+    blocks = fixed_blocks(model)
+    system = BlockSystem(n, pat.indptr, pat.indices, blocks)
+    worst = 0.0
+    for d in range(D):
+        tabs = {**model.tables, **{a: np.asarray(v[d]) for a, v in stacked.items()}}
+        p_data = pat.data(tabs)
+        P = sp.csr_matrix((p_data, pat.indices, pat.indptr), shape=(n, n))
+        r = _parts_rhs(P, parts)
+        if horizon is not None:
+            Pt = P.T.tocsr() if transpose else P
+            v = np.zeros_like(r)
+            for _ in range(int(horizon)):
+                v = r + model.beta * (Pt @ v)
+            X[d] = v
+            continue
+        res = system.solve(system.data(p_data, model.beta), r, transpose=transpose, tol=tol)
+        if res.status != Status.CONVERGED:
+            raise ConvergenceError(f"sparse LU failed on posterior draw {d} ({res.status.name.lower()}, relative "
+                                   f"residual {res.residual:.3g})", stats={"method": "sparse", "draw": d})
+        X[d] = res.x
+        worst = max(worst, res.residual)
+    return X, {"method": "sparse", "draws": D, "blocks": blocks, "non_zeros": pat.nnz, "residual": worst,
+               "seconds": time.perf_counter() - t0}
 
 
-@partial(jax.jit, static_argnames=("horizon",))
-def _horizon_draws(op, stacked, rhs, beta, horizon):
-    def one(args):
-        tables, b = args
-        return horizon_values(op.with_tables(tables).mv, b, beta, horizon)
+def solve_draw_values(model, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts], x0: np.ndarray, *,
+                      tol: float = 1e-10, transpose: bool = False, method: str = "auto",
+                      batch: int | None = None) -> tuple[np.ndarray, dict]:
+    """Values of every posterior draw, ``(D, n, k)``, by the method the point solve would use
+    (:func:`stateworth.solver.solve.choose_method`): the sparse LU on the host, or batched
+    preconditioned GMRES on the structured operator (:func:`solve_draws`, warm from ``x0``)."""
+    from stateworth.solver.solve import choose_method
 
-    return jax.lax.map(one, (stacked, rhs))
+    chosen = choose_method(model) if method == "auto" else method
+    if chosen == "sparse":
+        return sparse_draws(model, stacked, parts, tol=tol, transpose=transpose)
+    config.use_jax()
+    from stateworth.valuation.batched import rewards_for_draws, solve_draws
+
+    op = model.operator
+    return solve_draws(model, stacked, lambda t: rewards_for_draws(op, t, parts), x0, tol=tol,
+                       transpose=transpose, batch=batch)
 
 
-def horizon_draws(model, stacked: Mapping[str, np.ndarray], rhs, horizon: int) -> np.ndarray:
-    """H-period values of every draw: ``(D, n, k)``."""
-    config.float64()
-    tabs = {a: jnp.asarray(v) for a, v in stacked.items()}
-    return np.asarray(_horizon_draws(model.operator, tabs, jnp.asarray(rhs), jnp.float64(model.beta), int(horizon)))
+def horizon_draw_values(model, stacked: Mapping[str, np.ndarray], parts: Sequence[RewardParts],
+                        horizon: int) -> np.ndarray:
+    """H-period values of every draw, ``(D, n, k)``, on the host for sparse-sized models, else
+    batched on the structured operator."""
+    from stateworth.solver.solve import choose_method
+
+    if choose_method(model) == "sparse":
+        return sparse_draws(model, stacked, parts, horizon=horizon)[0]
+    config.use_jax()
+    from stateworth.valuation.batched import horizon_draws, rewards_for_draws
+
+    return horizon_draws(model, stacked, rewards_for_draws(model.operator, stacked, parts), horizon)

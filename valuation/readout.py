@@ -26,14 +26,14 @@ def readout(control, treatment, weights: Any, stream: str = "revenue", level: fl
     if control.model.spec.canonical() != treatment.model.spec.canonical():
         raise QueryError("control and treatment models have different specs; a read-out compares two fits of the "
                          "same spec (same grid, rules and rewards)", field="treatment")
-    j_c, j_t = control._col(stream), treatment._col(stream)
+    j_c, j_t = control.solved.col(stream), treatment.solved.col(stream)
     if not 0.0 < float(level) < 1.0:
         raise QueryError(f"interval level must lie strictly between 0 and 1 (got {level})", field="level")
     mu = control.weights_vector(weights)
-    vc = float(np.dot(mu, control._columns[stream]))
-    vt = float(np.dot(mu, treatment._columns[stream]))
-    dc = None if control._draws is None else control._draws[:, :, j_c] @ mu
-    dt = None if treatment._draws is None else treatment._draws[:, :, j_t] @ mu
+    vc = float(np.dot(mu, control.solved.values[:, j_c]))
+    vt = float(np.dot(mu, treatment.solved.values[:, j_t]))
+    dc = None if control.solved.draws is None else control.solved.draws[:, :, j_c] @ mu
+    dt = None if treatment.solved.draws is None else treatment.solved.draws[:, :, j_t] @ mu
     interval = ci = ti = None
     if dc is not None:
         lo, hi = percentile_interval(dc, level)

@@ -157,6 +157,16 @@ def moved_states(spec, grid, states: np.ndarray, levels: Mapping[str, str]) -> n
     return np.ravel_multi_index(tuple(new.T), grid.shape).astype(np.int64)
 
 
+def check_move(spec, frm: str, to: str, what: str = "plan") -> None:
+    """QueryError when the status move rules (``axes.<status>.moves``) forbid ``frm -> to``: a
+    contrast across a move no customer can make answers no question."""
+    rules = spec.axes[spec.status_axis].moves or {}
+    if frm in rules and to not in rules[frm]:
+        allowed = [x for x in rules[frm] if x != frm]
+        raise QueryError(f"the move {frm} -> {to} is not allowed by axes.{spec.status_axis}.moves.{frm} "
+                         f"(from {frm} a customer can move to {', '.join(allowed) or 'nothing else'})", field=what)
+
+
 def check_sold(spec, coords: Mapping[str, str], plan: str) -> None:
     """QueryError when ``plan`` is not sold at the state's fixed-axis levels."""
     from stateworth.rules.spec import not_sold_pairs

@@ -2,5 +2,5 @@
 
 ``ORDER`` fixes the order in ``stateworth --help``; commands not listed come after, by name."""
 
-ORDER = ["init", "check", "simulate", "fit", "solve", "value", "compare", "change", "marginal",
+ORDER = ["init", "check", "simulate", "fit", "backtest", "solve", "value", "compare", "change", "marginal",
          "readout", "report", "serve", "query", "demo"]

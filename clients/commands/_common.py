@@ -52,37 +52,39 @@ def parse_selection(items: Sequence[str] | None, what: str = "cohort") -> dict[s
     return out
 
 
-#: valuers already built in this process, by (path, modification time, draws): the demo and the
-#: tests ask many questions of one model; a one-shot command line call never hits it
-_VALUERS: dict[tuple, Any] = {}
+def note(message: str) -> None:
+    """A one-line note on stderr (what the command did about stored values, caches, ...)."""
+    print(f"note: {message}", file=sys.stderr)
 
 
 def load_valuer(path: str, *, draws: bool = True, quiet: bool = False):
-    """A :class:`~stateworth.valuation.Valuer` for a compiled model directory or a spec with
-    written tables (solved on load: every reward stream, and every posterior draw if any)."""
+    """A :class:`~stateworth.valuation.Valuer` for a compiled model directory (its stored values,
+    solved and stored first when there are none or they do not match the model) or for a spec with
+    written tables (solved now: every stream, every posterior draw, the long-run mix)."""
     from pathlib import Path
 
     from stateworth.clients.commands.solve import load_any
     from stateworth.valuation import Valuer
 
-    from stateworth.rules.artifact import MANIFEST, model_files
-
     p = Path(path)
     if p.is_dir():
-        p = model_files(p)  # the current version's own folder: a new version is a new key
-    stamp = p / MANIFEST if p.is_dir() else p
-    key = (str(p.resolve()), stamp.stat().st_mtime_ns if stamp.exists() else None, bool(draws))
-    if key[1] is not None and key in _VALUERS:
-        return _VALUERS[key]
-    model = load_any(str(p))
+        from stateworth.rules import load_model
+        from stateworth.rules.artifact import model_files
+        from stateworth.valuation import stored
+
+        p = model_files(p)  # the current version's own folder: model and values from one version
+
+        model = load_model(p)[0]
+        if not quiet and sys.stderr.isatty() and not stored.exists(p):
+            print(f"solving {model.name} ({model.n_states:,} states, {len(model.streams)} streams"
+                  f"{', with posterior draws' if model.draws else ''}; stored with the model for next time) ...",
+                  file=sys.stderr)
+        return Valuer.open(p, model, note=note)
+    model = load_any(path)
     if not quiet and sys.stderr.isatty():
-        print(f"solving {model.name} ({model.n_states:,} states, {len(model.rewards)} streams"
+        print(f"solving {model.name} ({model.n_states:,} states, {len(model.streams)} streams"
               f"{', with posterior draws' if model.draws and draws else ''}) ...", file=sys.stderr)
-    valuer = Valuer.build(model, draws=draws)
-    if len(_VALUERS) >= 8:
-        _VALUERS.pop(next(iter(_VALUERS)))
-    _VALUERS[key] = valuer
-    return valuer
+    return Valuer.build(model, draws=draws)
 
 
 def selection_mask(valuer, selection: Mapping[str, Sequence[str]], what: str = "cohort"):
@@ -104,13 +106,16 @@ def selection_mask(valuer, selection: Mapping[str, Sequence[str]], what: str = "
 def cohort_weights(valuer, selection: Mapping[str, Sequence[str]], basis: str = "long-run",
                    what: str = "cohort"):
     """Cohort weights ``(n,)`` summing to 1: the long-run state mix (``valuer.stationary()``)
-    restricted to the selection, or ``basis="uniform"``: equal weight on each selected state.
+    restricted to the selection, or ``basis="uniform"``: equal weight on each selected state the
+    chain can reach.
     QueryError when the selection holds no weight (e.g. a plan not sold where selected)."""
     import numpy as np
 
     mask = selection_mask(valuer, selection, what)
     if basis == "uniform":
-        w = mask.astype(np.float64)
+        # states no customer can be in carry no weight
+        reach = valuer.solved.reachable
+        w = (mask if reach is None else mask & reach).astype(np.float64)
     elif basis == "long-run":
         pi = np.asarray(valuer.stationary(), dtype=np.float64)
         # the long-run solve leaves round-off (~1e-17) on unreachable states: that is no weight
@@ -124,6 +129,24 @@ def cohort_weights(valuer, selection: Mapping[str, Sequence[str]], basis: str = 
         raise QueryError(f"the selection {sel} holds no {'states' if basis == 'uniform' else 'long-run weight'}; "
                          "widen it (a plan not sold in a market, or a state never reached, has none)", field=what)
     return w / total
+
+
+def cohort_mix(valuer, weights) -> str:
+    """What population cohort weights describe, by status level: ``"solo 66%, duo 24%, ..."``
+    (levels with no weight left out), so a reader knows who J is about."""
+    import numpy as np
+
+    model = valuer.model
+    st = model.spec.status_axis
+    codes = model.grid.codes()[model.grid.position(st)]
+    parts = []
+    for i, lv in enumerate(model.grid.axis(st).levels):
+        share = float(np.sum(np.where(codes == i, weights, 0.0)))
+        if share > 0.0005:
+            parts.append(f"{lv} {share:.0%}")
+    missing = [lv for i, lv in enumerate(model.grid.axis(st).levels)
+               if float(np.sum(np.where(codes == i, weights, 0.0))) <= 0.0005]
+    return ", ".join(parts) + (f" (no {', '.join(missing)})" if missing else "")
 
 
 def add_model_argument(p: argparse.ArgumentParser) -> None:

@@ -15,9 +15,9 @@ weighted over a cohort (default: every state in the long-run mix). A product tea
 engagement lift worth" question.
 
 example:
-  stateworth change demo-out/model --axis engagement --to regular --delta 0.03 \\
+  stateworth change demo-out/models/fitted --axis engagement --to regular --delta 0.03 \\
       --when next.status=solo,duo,studio --when engagement=light --cohort status=solo,duo,studio
-  stateworth change demo-out/model --axis status --to lapsed --delta -0.01 \\
+  stateworth change demo-out/models/fitted --axis status --to lapsed --delta -0.01 \\
       --when status=solo --cohort status=solo --stream margin --json
 """
 
@@ -49,12 +49,17 @@ def run(args: argparse.Namespace) -> int:
                               when={k: (v[0] if len(v) == 1 else v) for k, v in when.items()})
     res = valuer.transition_change(change, stream=stream, weights=weights, level=level)
     if args.json:
-        c.print_json(res.to_dict())
+        doc = res.to_dict()
+        doc["figure"] = "exact: the chain re-solved with the changed probability (a finite change, not a slope)"
+        doc["cohort_mix"] = c.cohort_mix(valuer, weights)
+        c.print_json(doc)
         return 0
     print(c.header(valuer, stream))
     print(f"change: {change.describe()}")
+    print("exact: the chain re-solved with the changed probability (a finite change; `stateworth marginal` "
+          "gives slopes, which differ from this for changes that are not small)")
     print(f"cohort: {c.describe_state({k: ','.join(v) for k, v in selection.items()}) or 'every state'} "
-          f"({args.basis} weights)")
+          f"({args.basis} weights): {c.cohort_mix(valuer, weights)}")
     print_table(["figure", "value", f"{level:.0%} interval", "unit"],
                 [["cohort-weighted change of value", money(res.weighted), interval(res.interval), res.unit],
                  ["largest change at one state", money(float(np.max(np.abs(res.delta)))), "", res.unit]])

@@ -21,13 +21,13 @@ kinds:
   states        the state before, and --after AXIS=LEVEL ... overrides for the state after
 
 example:
-  stateworth compare demo-out/model acquisition market=harbor tenure=0 month=jan \\
+  stateworth compare demo-out/models/fitted acquisition market=harbor tenure=0 month=jan \\
       status=prospect engagement=none --plan solo
-  stateworth compare demo-out/model plan-change market=upland tenure=4 month=mar \\
+  stateworth compare demo-out/models/fitted plan-change market=upland tenure=4 month=mar \\
       status=solo engagement=regular --plan duo --stream margin
-  stateworth compare demo-out/model engagement market=coast tenure=2 month=jan \\
+  stateworth compare demo-out/models/fitted engagement market=coast tenure=2 month=jan \\
       status=duo engagement=light --to regular
-  stateworth compare demo-out/model states market=harbor tenure=0 month=jan status=prospect \\
+  stateworth compare demo-out/models/fitted states market=harbor tenure=0 month=jan status=prospect \\
       engagement=none --after status=duo --json
 """
 
@@ -96,8 +96,18 @@ def run(args: argparse.Namespace) -> int:
     d = a.details or {}
     if "before_value" in d and "after_value" in d:
         rows.append(["V(before)", money(d["before_value"]), "", a.unit])
-        rows.append(["V(after)", money(d["after_value"]), "", a.unit])
-    if isinstance(d.get("after"), dict) and args.kind != "states":
+        rows.append(["V(after)" + (": expected over the landing mix" if d.get("landing") else ""),
+                     money(d["after_value"]), "", a.unit])
+    if d.get("landing"):
+        mixed = set(d["landing"][0]["levels"])
+        fixed_part = {k: v for k, v in d["after"].items() if k not in mixed}
+        parts = []
+        for part in d["landing"]:
+            levels = part["levels"]
+            name = "the rest" if "other" in levels else " ".join(f"{k}={v}" for k, v in levels.items())
+            parts.append(f"{name} {part['share']:.0%}")
+        print(f"lands at {c.describe_state(fixed_part)}, mixed as the chain's joining rows say: {', '.join(parts)}")
+    elif isinstance(d.get("after"), dict) and args.kind != "states":
         print(f"state after: {c.describe_state(d['after'])}")
     rows.append(["value of the move: V(after) - V(before)", money(a.value), interval(a.interval), a.unit])
     if naive is not None:

@@ -71,7 +71,7 @@ def starter_spec(plans: list[str], markets: list[str], prices: list[float] | Non
     given = ["market"] + (["month"] if seasonal else []) + ["status", "engagement"]
     lines: list[str] = []
     w = lines.append
-    w(f"# stateworth model spec: a starter written by `stateworth init`. Edit freely; `stateworth check` lists")
+    w("# stateworth model spec: a starter written by `stateworth init`. Edit freely; `stateworth check` lists")
     w("# every problem with its key and what would be right. Probability tables are left out on purpose:")
     w("# `stateworth fit` estimates them from your account panel (see README, \"Spec reference\").")
     w("")
@@ -119,7 +119,7 @@ def starter_spec(plans: list[str], markets: list[str], prices: list[float] | Non
         w(f"moves.{b} = {_list(bands[max(0, i - 1):i + 2])}")
     w("# Written tables (instead of fitting) look like this; later rows override earlier ones:")
     w("# [[axes.engagement.table]]")
-    w(f'# when = {{ "next.status" = ["prospect", "lapsed"] }}')
+    w('# when = { "next.status" = ["prospect", "lapsed"] }')
     w(f"# probs = {{ {bands[0]} = 1.0 }}")
     w("")
     w("[rewards.revenue]        # money per member period, in the model's currency")

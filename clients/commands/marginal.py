@@ -15,8 +15,8 @@ percentage point on it is worth, the other allowed entries of its row scaled dow
 Marginal figures are local: use `stateworth change` for the exact effect of a finite change.
 
 example:
-  stateworth marginal demo-out/model --top 10
-  stateworth marginal demo-out/model --cohort status=solo,duo,studio --stream margin --json
+  stateworth marginal demo-out/models/fitted --top 10
+  stateworth marginal demo-out/models/fitted --cohort status=solo,duo,studio --stream margin --json
 """
 
 
@@ -40,20 +40,26 @@ def run(args: argparse.Namespace) -> int:
     stream = c.default_stream(valuer, args.stream)
     selection = c.parse_selection(args.cohort)
     weights = c.cohort_weights(valuer, selection, args.basis)
-    from stateworth.clients.report import cycle_axes, pool_marginal
+    from stateworth.valuation.summary import cycle_axes, pool_marginal
 
-    pool = [] if args.per_cycle else cycle_axes(valuer.model)
+    pool = [] if args.per_cycle else cycle_axes(valuer.solved)
     res = valuer.marginal(weights, stream=stream, top=10**9 if pool else args.top)
     entries = pool_marginal(res.entries, pool)[:args.top]
     if args.json:
         doc = res.to_dict()
         doc["entries"] = entries
         doc["pooled_over"] = pool
+        doc["figure"] = "slope: d J / d probability, linear in the change (use change for an exact finite change)"
+        doc["cohort_mix"] = c.cohort_mix(valuer, weights)
         c.print_json(doc)
         return 0
     print(c.header(valuer, stream))
     print(f"cohort: {c.describe_state({k: ','.join(v) for k, v in selection.items()}) or 'every state'} "
           f"({args.basis} weights); cohort value J = {money(res.objective)} {res.unit} per customer")
+    print(f"J describes: {c.cohort_mix(valuer, weights)}"
+          + (" (the long-run mix: never-members have joined or left by then)" if args.basis == "long-run" else ""))
+    print("these are slopes (linear, for small changes); `stateworth change` re-solves the chain for the exact "
+          "effect of a finite change")
 
     def prob(e):
         lo, hi = e["probability_range"]

@@ -19,8 +19,8 @@ given the state); not accounting figures; the discount rate and policy are finan
 examples:
   stateworth query models
   stateworth query value fitness-demo market=harbor tenure=0 month=jan status=prospect engagement=none
-  stateworth query contrast fitness-demo --acquisition solo market=harbor tenure=0 month=jan \\
-      status=prospect engagement=none --interval 0.9
+  stateworth query contrast fitness-demo market=harbor tenure=0 month=jan status=prospect \\
+      engagement=none --acquisition solo --level 0.9
   stateworth query marginal fitness-demo --cohort status=solo,duo --top 10
   stateworth query --admin-token-file admin.token reload
 """
@@ -37,7 +37,8 @@ def _common(p: argparse.ArgumentParser, horizon: bool = True, interval: bool = T
     if horizon:
         p.add_argument("--horizon", type=int, help="finite horizon in periods (default infinite)")
     if interval:
-        p.add_argument("--interval", type=float, help="coverage of a percentile interval, e.g. 0.9")
+        p.add_argument("--level", dest="interval", type=float,
+                       help="interval level: coverage of a percentile interval, e.g. 0.9 (as in `compare`, `value`)")
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -65,7 +66,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     g.add_argument("--plan-change", metavar="PLAN", help="a member moves to PLAN")
     g.add_argument("--win-back", metavar="PLAN", help="a former member rejoins on PLAN")
     g.add_argument("--engagement", metavar="AXIS=LEVEL", help="a chance axis moves to LEVEL")
-    g.add_argument("--to", metavar="AXIS=LEVEL", nargs="+", help="general move: the levels that change")
+    g.add_argument("--after", metavar="AXIS=LEVEL", nargs="+",
+                   help="general move: the levels that differ after it (as in `compare ... states --after`)")
     co = sub.add_parser("cohort", help="cohort-weighted contrast")
     co.add_argument("model")
     co.add_argument("--cohort", action="append", required=True, metavar="AXIS=LEVEL[,LEVEL]")
@@ -74,7 +76,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     ch = sub.add_parser("change", help="exact effect of changing one transition factor")
     ch.add_argument("model")
     ch.add_argument("--axis", required=True, help="random axis whose factor changes (e.g. status)")
-    ch.add_argument("--to-level", required=True, help="next level whose probability moves (e.g. lapsed)")
+    ch.add_argument("--to", dest="to_level", required=True,
+                    help="next level whose probability moves (e.g. lapsed; as in `change --to`)")
     ch.add_argument("--delta", type=float, required=True, help="change in probability (-0.01 is -1 point)")
     ch.add_argument("--when", action="append", metavar="AXIS=LEVEL[,LEVEL]", help="cells changed (default all)")
     ch.add_argument("--cohort", action="append", metavar="AXIS=LEVEL[,LEVEL]", help="cohort for the weighted figure")
@@ -90,7 +93,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     r.add_argument("treatment_version")
     r.add_argument("--cohort", action="append", required=True, metavar="AXIS=LEVEL[,LEVEL]")
     r.add_argument("--stream", default="")
-    r.add_argument("--interval", type=float)
+    r.add_argument("--level", dest="interval", type=float, help="interval level, e.g. 0.9")
     r.add_argument("--seed", type=int, default=0)
     sub.add_parser("health", help="grpc.health.v1 status of the server")
     lo = sub.add_parser("load", help="(admin) load or reload one artifact directory of the model directory")
@@ -194,7 +197,7 @@ def run(args: argparse.Namespace) -> int:
                 (ax, lv), = parse_pairs([args.engagement], "engagement").items()
                 r = client.engagement_change(args.model, st, ax, lv, **kw)
             else:
-                r = client.contrast(args.model, st, {**st, **parse_pairs(args.to, "to")}, **kw)
+                r = client.contrast(args.model, st, {**st, **parse_pairs(args.after, "after")}, **kw)
             _print(r, args.json, f"{r.kind}: {_fig(r.value)}  [{r.name} {r.version}, {r.stream}]\n{CAUTION_LINE}")
         elif a in ("cohort", "change", "marginal", "readout"):
             version = getattr(args, "version", "") or getattr(args, "control_version", "")

@@ -15,8 +15,8 @@ arms' uncertainty enters; without draws there is no interval. Beside it, each ar
 member share and expected member-months.
 
 example:
-  stateworth readout demo-out/control demo-out/treatment --cohort status=solo,duo,studio
-  stateworth readout demo-out/control demo-out/treatment --stream margin --json
+  stateworth readout demo-out/models/experiment-control demo-out/models/experiment-treatment --cohort status=solo,duo,studio
+  stateworth readout demo-out/models/experiment-control demo-out/models/experiment-treatment --stream margin --json
 """
 
 

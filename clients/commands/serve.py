@@ -28,9 +28,9 @@ throughput. Each worker holds every model in its own memory.
 Answers are model-based estimates under the model's causal assumptions; not accounting figures.
 
 example:
-  stateworth serve models/ --port 50051 --token-file query.token --admin-token-file admin.token
-  stateworth serve models/ --workers 2 --metrics-port 9464
-  stateworth serve models/ --admin-open     # local development: loads without a token
+  stateworth serve demo-out/models --port 50051 --token-file query.token --admin-token-file admin.token
+  stateworth serve demo-out/models --workers 2 --metrics-port 9464
+  stateworth serve demo-out/models --admin-open
 """
 
 
@@ -58,6 +58,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--work-workers", type=int, default=2, help="solves run at once (default 2)")
     p.add_argument("--work-queue", type=int, default=8, help="solves waiting before RESOURCE_EXHAUSTED (default 8)")
     p.add_argument("--work-seconds", type=float, default=300.0, help="longest a solve may take (default 300)")
+    p.add_argument("--work-cache-mb", type=float, default=256.0,
+                   help="MiB of solve results kept for repeated calls, least recently used evicted (default 256)")
+    p.add_argument("--horizon-cache-mb", type=float, default=256.0,
+                   help="MiB of finite-horizon values kept for all models, least recently used evicted (default 256)")
     p.add_argument("--drain-seconds", type=float, default=10.0, help="grace for calls in flight on SIGTERM")
     p.add_argument("--metrics-port", type=int, help="serve Prometheus metrics on this port (0: a free one)")
     p.add_argument("--metrics-host", default="127.0.0.1", help="address of the metrics endpoint (default loopback)")
@@ -79,6 +83,9 @@ def run(args: argparse.Namespace) -> int:
     for opt in ("threads", "max_batch", "max_concurrent", "work_workers", "workers"):
         if getattr(args, opt) < 1:
             raise QueryError(f"--{opt.replace('_', '-')} must be at least 1 (got {getattr(args, opt)})", field=opt)
+    for opt in ("work_cache_mb", "horizon_cache_mb"):
+        if not getattr(args, opt) >= 0:
+            raise QueryError(f"--{opt.replace('_', '-')} must be 0 or more MiB (got {getattr(args, opt)})", field=opt)
     if args.max_message_mb <= 0:
         raise QueryError("--max-message-mb must be positive", field="max_message_mb")
     if args.log_flush_ms < 0:
@@ -97,6 +104,8 @@ def run(args: argparse.Namespace) -> int:
                           max_concurrent=args.max_concurrent, max_message_bytes=int(args.max_message_mb * 2**20),
                           max_batch=args.max_batch, work_workers=args.work_workers, work_queue=args.work_queue,
                           work_seconds=args.work_seconds, drain_seconds=args.drain_seconds,
+                          work_cache_bytes=int(args.work_cache_mb * 2**20),
+                          horizon_cache_bytes=int(args.horizon_cache_mb * 2**20),
                           metrics_host=args.metrics_host, metrics_port=args.metrics_port,
                           reflection=not args.no_reflection, worker_index=args.worker_index,
                           worker_port=args.worker_port)
@@ -109,6 +118,7 @@ _PASSED = [("--host", "host"), ("--tls-cert", "tls_cert"), ("--tls-key", "tls_ke
            ("--admin-token-file", "admin_token_file"), ("--threads", "threads"), ("--max-batch", "max_batch"),
            ("--max-message-mb", "max_message_mb"), ("--max-concurrent", "max_concurrent"),
            ("--work-workers", "work_workers"), ("--work-queue", "work_queue"), ("--work-seconds", "work_seconds"),
+           ("--work-cache-mb", "work_cache_mb"), ("--horizon-cache-mb", "horizon_cache_mb"),
            ("--drain-seconds", "drain_seconds"), ("--log-level", "log_level"), ("--log-flush-ms", "log_flush_ms")]
 
 

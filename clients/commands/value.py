@@ -13,8 +13,8 @@ that state on, V(s), solved from (I - beta P) V = r. The state needs one level o
 With posterior draws in the model (from `stateworth fit --draws`), a percentile interval too.
 
 example:
-  stateworth value demo-out/model market=harbor tenure=0 month=jan status=prospect engagement=none
-  stateworth value demo-out/model market=harbor tenure=3 month=jan status=duo engagement=regular \\
+  stateworth value demo-out/models/fitted market=harbor tenure=0 month=jan status=prospect engagement=none
+  stateworth value demo-out/models/fitted market=harbor tenure=3 month=jan status=duo engagement=regular \\
       --stream margin --horizon 24 --json
 """
 

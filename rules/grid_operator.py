@@ -16,14 +16,15 @@ pair by pair (:mod:`stateworth.rules.pairwise`): elementwise products of slices,
 compiles into one loop over the result; the status factor resolves the counters in the same
 loop (for a pair of statuses a counter's next level is a shift or a reset, not a gather). A
 larger axis whose move rules keep it banded (a band that moves at most two levels a period) is
-applied offset by offset (``offsets`` steps: a few shifted products); other large
-axes are one einsum over named dimensions, and a counter that another table needs before the
-status step is a gather along its axis. An apply costs about (grid size) x (sum of the sizes of
+applied offset by offset (``Offsets`` steps: a few shifted products); other large
+axes are one einsum over named dimensions (``Contract``), and a counter that another table needs
+before the status step is a gather along its axis (``CounterGather``). An apply costs about (grid size) x (sum of the sizes of
 the contracted axes) and a few grid-sized arrays of memory. Tables are stored in the order their
-step reads them (``Plan.layouts``; ``with_tables`` takes the spec's order). The transpose runs
-the steps backwards: pairwise steps by their written-out transpose, the others (offsets steps as
-the dense contraction they stand for) by
-:func:`jax.linear_transpose` (the gather becomes a scatter-add).
+step reads them (``Plan.layouts``; ``with_tables`` takes the spec's order). Each kind of step is
+a small class with its own apply and transpose (:mod:`stateworth.rules.steps`); the transpose
+runs the steps' transposes backwards: pairwise steps by their written-out transpose, the others
+(offsets steps as the dense contraction they stand for) by :func:`jax.linear_transpose` (the
+gather becomes a scatter-add).
 
 Shapes: ``mv`` takes ``(n,)`` or ``(n, k)`` and returns the same shape (k right-hand sides).
 """
@@ -32,29 +33,19 @@ from __future__ import annotations
 
 import collections
 import threading
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import partial
 
 import jax
 import jax.numpy as jnp
 import numpy as np
-import scipy.sparse as sp
 
 from stateworth import config
 from stateworth.rules.counters import counter_index
 from stateworth.rules.factors import Factor
-from stateworth.rules import pairwise
 from stateworth.rules.grid import Grid
 from stateworth.rules.pairwise import PairStep, classify
-
-
-@dataclass(frozen=True)
-class Step:
-    kind: str  # "contract" | "offsets" | "pairwise" | "counter" | "cycle" | "finish"
-    key: str  # array name ("table.<axis>" or "index.<axis>")
-    perm: tuple[int, ...]  # finish: transpose to the grid order
-    shape_in: tuple[int, ...] = ()  # finish: frame shape before it
-    extra: tuple = ()  # step-specific static data (einsum string, axis positions)
+from stateworth.rules.steps import Contract, CounterGather, CycleRoll, Finish, Offsets, Step
 
 
 @dataclass(frozen=True)
@@ -77,6 +68,8 @@ class Plan:
         perm = dict(self.layouts).get(key)
         if perm is None or perm == tuple(range(len(perm))):
             return table
+        if isinstance(table, np.ndarray):  # known now: numpy, no compile of a transpose kernel
+            return np.ascontiguousarray(np.transpose(table, perm))
         return jnp.transpose(table, perm)
 
     def stored_dims(self, key: str, dims: tuple) -> tuple:
@@ -92,11 +85,7 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
     dimensions (no explicit transposes), counters shift in place, and the last step transposes
     to the grid order."""
     kinds = {a.name: a.kind for a in grid.axes}
-    sizes = {a.name: a.size for a in grid.axes}
     status = spec.status_axis
-
-    def size_of(d: str) -> int:
-        return sizes[d.rstrip("'")]
 
     dims = [a.name if a.kind == "fixed" else a.name + "'" for a in grid.axes]
     pending = [a.name for a in grid.axes if a.kind in ("counter", "cycle")]
@@ -112,15 +101,14 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
         nonlocal dims
         pos = dims.index(d + "'")
         if kinds[d] == "cycle":
-            steps.append(Step("cycle", "", (), (), (pos,)))
+            steps.append(CycleRoll(pos))
             dims = dims[:pos] + [d] + dims[pos + 1:]
         else:
             new = [d if x == d + "'" else x for x in dims]
             if status not in new:
                 new.insert(new.index(status + "'"), status)
-            steps.append(Step("counter", f"index.{d}", (), (), (
-                pos, tuple(new.index(x) for x in [status, status + "'"]), status in dims,
-                new.index(status))))
+            steps.append(CounterGather(f"index.{d}", pos, new.index(status), new.index(status + "'"),
+                                       None if status in dims else new.index(status)))
             dims = new
         pending.remove(d)
 
@@ -133,7 +121,7 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
                 resolve(d)
         step = _pair_step(spec, f, tdims, dims, [d for d in here if d in pending], status, list(grid.names))
         if step is not None:
-            steps.append(Step("pairwise", f"table.{f.axis}", (), (), (step,)))
+            steps.append(step)
             for c, _ in step.counters:
                 pending.remove(c)
             dims = list(step.dims_out)
@@ -147,10 +135,9 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
         # (an axis whose current level an earlier step already brought in is left to einsum)
         offsets = _offsets(spec, f, tdims) if f.axis not in dims else None
         if offsets is not None:
-            steps.append(Step("offsets", f"table.{f.axis}", (), (), (
-                tuple(dims), tuple(tdims), tuple(out), offsets, f.axis, expr)))
+            steps.append(Offsets(f"table.{f.axis}", f.axis, tuple(dims), tuple(tdims), tuple(out), offsets, expr))
         else:
-            steps.append(Step("contract", f"table.{f.axis}", (), (), (expr,)))
+            steps.append(Contract(f"table.{f.axis}", expr))
         dims = out
     for d in list(pending):
         resolve(d)
@@ -159,13 +146,13 @@ def build_plan(spec, grid: Grid, factors: list[Factor]) -> Plan:
     missing = [x for x in target if x not in dims]
     dims_full = dims + missing
     perm = tuple(dims_full.index(x) for x in target)
-    steps.append(Step("finish", "", perm, tuple(size_of(x) for x in dims), (len(missing),)))
-    layouts = tuple((st.key, st.extra[0].perm) for st in steps if st.kind == "pairwise")
+    steps.append(Finish(perm, len(missing), grid.shape))
+    layouts = tuple((st.key, st.perm) for st in steps if isinstance(st, PairStep))
     return Plan(grid.shape, tuple(steps), layouts)
 
 
 #: a factor too large for pairs whose move rules allow at most this share of its levels as
-#: offsets ``j - i`` is applied diagonal by diagonal (:func:`_offsets_apply`). Measured at 3.6 x
+#: offsets ``j - i`` is applied diagonal by diagonal (:class:`~stateworth.rules.steps.Offsets`). Measured at 3.6 x
 #: 10^5 states, float32, a 20-level band moving up to two levels (5 offsets): 0.11 ms a step
 #: against 0.29 ms for the einsum, which was then 60 % of an apply
 OFFSET_SHARE = 0.5
@@ -210,7 +197,7 @@ def _pair_step(spec, f: Factor, tdims: list[str], dims: list[str], counters: lis
 
 def _offsets(spec, f: Factor, tdims: list[str]) -> tuple[int, ...] | None:
     """The level offsets ``j - i`` that the move rules of ``f.axis`` allow (``i -> j``), when
-    the factor is better applied diagonal by diagonal (:func:`_offsets_apply`) than by one einsum:
+    the factor is better applied diagonal by diagonal (:class:`~stateworth.rules.steps.Offsets`) than by one einsum:
     the axis is given itself, every level has a move rule, and the distinct offsets are at most
     :data:`OFFSET_SHARE` of its levels. Else None."""
     a = f.axis
@@ -225,98 +212,24 @@ def _offsets(spec, f: Factor, tdims: list[str]) -> tuple[int, ...] | None:
     return tuple(offs)
 
 
-def _arranged(x: jax.Array, have: list[str], out: list[str]) -> jax.Array:
-    """``x`` with named dims ``have`` transposed to their order in ``out``, with size-1 dims
-    where ``out`` has a name that ``have`` lacks (ready to broadcast)."""
-    x = jnp.transpose(x, [have.index(d) for d in out if d in have])
-    return x.reshape([x.shape[[d for d in out if d in have].index(d)] if d in have else 1 for d in out])
-
-
-def _offsets_apply(extra: tuple, table: jax.Array, frame: jax.Array) -> jax.Array:
-    """``out[.., i, ..] = sum_o T[.., i, i + o] x[.., i + o, ..]`` over the allowed offsets o:
-    the contraction of a banded axis as a few shifted elementwise products (XLA fuses them into
-    one pass over the frame; a dense einsum costs the axis's full length per state)."""
-    dims, tdims, out, offsets, a, _ = extra
-    dims, tdims, out = list(dims), list(tdims), list(out)
-    nxt = a + "'"
-    K = table.shape[-1]
-    lo, hi = max(0, -offsets[0]), max(0, offsets[-1])
-    # the table with the current level just before the next one, padded so that every diagonal
-    # has K entries (zero where i + o falls off the axis)
-    t_dims = [d for d in tdims[:-1] if d != a] + [a, nxt]
-    t = jnp.transpose(table, [tdims.index(d) for d in t_dims])
-    t = jnp.pad(t, [(0, 0)] * (t.ndim - 1) + [(lo, hi)])
-    p = dims.index(nxt)
-    pad = [(0, 0)] * frame.ndim
-    pad[p] = (lo, hi)
-    xp = jnp.pad(frame, pad)
-    x_dims = [a if d == nxt else d for d in dims]
-    d_dims = t_dims[:-1]
-    total = None
-    for o in offsets:
-        diag = jnp.diagonal(t, offset=o + lo, axis1=-2, axis2=-1)  # T[.., i, i + o], (.., K)
-        shifted = jax.lax.slice_in_dim(xp, o + lo, o + lo + K, axis=p)  # x[.., i + o, ..]
-        term = _arranged(shifted, x_dims, out) * _arranged(diag, d_dims, out)
-        total = term if total is None else total + term
-    return total
-
-
-def _step(plan: Plan, arrays: dict, st: Step, frame: jax.Array) -> jax.Array:
-    """One step of the plan on the frame."""
-    if st.kind == "contract":
-        return jnp.einsum(st.extra[0], frame, arrays[st.key])
-    if st.kind == "offsets":
-        return _offsets_apply(st.extra, arrays[st.key], frame)
-    if st.kind == "pairwise":
-        return pairwise.apply(st.extra[0], arrays[st.key], frame)
-    if st.kind == "cycle":
-        (pos,) = st.extra
-        return jnp.roll(frame, -1, axis=pos)
-    if st.kind == "counter":
-        pos, (ps, psp), has_cur, insert_at = st.extra
-        if not has_cur:
-            frame = jnp.expand_dims(frame, insert_at)
-        idx = arrays[st.key]  # (C, S, S'): next level from (level, status, next status)
-        shape = [1] * frame.ndim
-        shape[pos], shape[ps], shape[psp] = idx.shape
-        order = np.argsort([pos, ps, psp])
-        idx = jnp.transpose(idx, tuple(order)).reshape(shape)
-        # a gather along one axis (used where a table other than the status one needs the
-        # current counter; next to the status factor, :mod:`pairwise` resolves counters)
-        return jnp.take_along_axis(frame, idx, axis=pos, mode="clip")
-    (n_missing,) = st.extra  # finish
-    if n_missing:
-        frame = frame.reshape(frame.shape + (1,) * n_missing)
-    frame = jnp.transpose(frame, st.perm)
-    return jnp.broadcast_to(frame, plan.grid_shape)
-
-
 def _apply_single(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
     """``x`` is ``(n,)``: one apply of P."""
     frame = x.reshape(plan.grid_shape)
     for st in plan.steps:
-        frame = _step(plan, arrays, st, frame)
+        frame = st.apply(arrays, frame)
     return frame.reshape(-1)
 
 
 def _apply_transpose_single(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
-    """``y`` is ``(n,)``: one apply of P^T, the steps transposed in reverse order (pairwise
-    steps by their written-out transpose, the others by ``jax.linear_transpose``)."""
-    shapes = []
+    """``y`` is ``(n,)``: one apply of P^T, the steps' transposes in reverse order."""
+    before = []  # the frame each step is applied to (shape and dtype)
     frame = jax.ShapeDtypeStruct(plan.grid_shape, y.dtype)
     for st in plan.steps:
-        shapes.append(frame)
-        frame = jax.eval_shape(partial(_step, plan, arrays, st), frame)
+        before.append(frame)
+        frame = jax.eval_shape(partial(st.apply, arrays), frame)
     cot = y.reshape(plan.grid_shape)
-    for st, shape in zip(reversed(plan.steps), reversed(shapes)):
-        if st.kind == "pairwise":
-            cot = pairwise.apply_transpose(st.extra[0], arrays[st.key], cot, shape.shape)
-        elif st.kind == "offsets":
-            # by the dense contraction's transpose: the shifted form's (written out, or by
-            # linear_transpose) measured 1.6-3x slower than this at 3.6 x 10^5 states
-            cot = jax.linear_transpose(lambda f, e=st.extra[5], t=arrays[st.key]: jnp.einsum(e, f, t), shape)(cot)[0]
-        else:
-            cot = jax.linear_transpose(partial(_step, plan, arrays, st), shape)(cot)[0]
+    for st, b in zip(reversed(plan.steps), reversed(before)):
+        cot = st.transpose(arrays, cot, b)
     return cot.reshape(-1)
 
 
@@ -328,71 +241,57 @@ def _columns(f, x: jax.Array) -> jax.Array:
     return jax.lax.map(f, x.T).T
 
 
-@jax.jit
-def _mv_columns(op: "GridOperator", x: jax.Array) -> jax.Array:
-    """``op.mv`` of several columns called outside a trace, with the operator as an argument.
-    Called eagerly, ``lax.map`` would trace the apply with the operator's tables inside it as
-    constants into a computation that JAX keeps in its dispatch cache for good: every model
-    compiled in a process (the rewards apply P once) left its tables there, and a server
-    loading a new version every few seconds grew by about 2 MiB a version at 10^4 states
-    (bench/soak_bench.py). As an argument, the tables are not kept, and one compiled apply
-    serves every model of the same structure (the plan is compared by value)."""
-    return op.mv(x)
-
-
+# jitted on their own (the plan static): a solver program applies P in several places (the
+# Krylov step, the residual, the smoother, the frozen-cluster correction) and in two precisions;
+# as nested jits each apply is traced once per precision and lowered as one shared function
+@partial(jax.jit, static_argnums=0)
 def _apply(plan: Plan, arrays: dict, x: jax.Array) -> jax.Array:
     return _columns(partial(_apply_single, plan, arrays), x)
 
 
+@partial(jax.jit, static_argnums=0)
 def _apply_transpose(plan: Plan, arrays: dict, y: jax.Array) -> jax.Array:
     return _columns(partial(_apply_transpose_single, plan, arrays), y)
 
 
-@jax.tree_util.register_pytree_node_class
+@partial(jax.tree_util.register_dataclass, data_fields=["arrays"], meta_fields=["plan", "transposed"])
+@dataclass(frozen=True, eq=False)
 class GridOperator:
-    """The transition operator P of a compiled model (or its transpose).
+    """The transition operator P of a compiled model (or its transpose), ``(n, n)``: a
+    :class:`stateworth.operators.StructuredOperator`.
 
     ``arrays`` holds the factor tables (``table.<axis>``) and counter index maps
     (``index.<axis>``): the pytree leaves, so a stack of operators from posterior draws can be
-    ``vmap``-ed. ``plan`` is static."""
+    ``vmap``-ed. ``plan`` and ``transposed`` are static (the pytree's structure)."""
 
-    def __init__(self, plan: Plan, arrays: dict, transposed: bool = False) -> None:
-        self.plan = plan
-        self.arrays = arrays
-        self.transposed = transposed
-        self.shape = (plan.size, plan.size)
+    plan: Plan
+    arrays: dict[str, jax.Array]
+    transposed: bool = False
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.plan.size, self.plan.size)
 
     def mv(self, x: jax.Array) -> jax.Array:
-        if x.ndim == 2 and not isinstance(x, jax.core.Tracer):
-            return _mv_columns(self, x)
         if self.transposed:
             return _apply_transpose(self.plan, self.arrays, x)
         return _apply(self.plan, self.arrays, x)
 
     def transpose(self) -> "GridOperator":
-        return GridOperator(self.plan, self.arrays, not self.transposed)
+        return replace(self, transposed=not self.transposed)
 
     def astype(self, dtype) -> "GridOperator":
         """The same operator with its factor tables in ``dtype`` (float32 for the inner solves of
         mixed precision); applies then take and return vectors of that type."""
         arrays = {k: (v.astype(dtype) if jnp.issubdtype(v.dtype, jnp.floating) else v) for k, v in self.arrays.items()}
-        return GridOperator(self.plan, arrays, self.transposed)
+        return replace(self, arrays=arrays)
 
     def with_tables(self, tables: dict) -> "GridOperator":
         """The same structure with other factor tables (a changed or drawn model)."""
         arrays = dict(self.arrays)
         for k, v in tables.items():
-            arrays[f"table.{k}"] = self.plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64))
-        return GridOperator(self.plan, arrays, self.transposed)
-
-    def tree_flatten(self):
-        keys = tuple(sorted(self.arrays))
-        return tuple(self.arrays[k] for k in keys), (self.plan, keys, self.transposed)
-
-    @classmethod
-    def tree_unflatten(cls, aux, children):
-        plan, keys, transposed = aux
-        return cls(plan, dict(zip(keys, children)), transposed)
+            arrays[f"table.{k}"] = self.plan.stored(f"table.{k}", config.device(v, jnp.float64))
+        return replace(self, arrays=arrays)
 
 
 #: recent (spec, plan, counter index arrays) by (id(spec), grid, factors): a transition change
@@ -411,7 +310,7 @@ def _plan_for(spec, grid: Grid, factors: list[Factor]) -> tuple[Plan, dict]:
             _PLANS.move_to_end(key)
             return hit[1], hit[2]
     plan = build_plan(spec, grid, factors)
-    index = {f"index.{a.name}": jnp.asarray(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
+    index = {f"index.{a.name}": config.device(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
     with _PLANS_LOCK:
         _PLANS[key] = (spec, plan, index)
         while len(_PLANS) > _PLANS_MAX:
@@ -423,70 +322,13 @@ def make_operator(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.
                   reuse_plan: bool = False) -> GridOperator:
     """The operator of ``tables`` on ``grid``; ``reuse_plan``: take the plan from a small cache of
     recent ones (for operators built again and again on the same spec object and grid)."""
-    config.float64()
+    config.use_jax()
     if reuse_plan:
         plan, index = _plan_for(spec, grid, factors)
     else:
         plan = build_plan(spec, grid, factors)
-        index = {f"index.{a.name}": jnp.asarray(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
-    arrays = {f"table.{k}": plan.stored(f"table.{k}", jnp.asarray(v, dtype=jnp.float64)) for k, v in tables.items()}
+        index = {f"index.{a.name}": config.device(counter_index(spec, a.name)) for a in grid.axes if a.kind == "counter"}
+    arrays = {f"table.{k}": config.device(plan.stored(f"table.{k}", np.asarray(v, dtype=np.float64)))
+              for k, v in tables.items()}
     arrays.update(index)
     return GridOperator(plan, arrays)
-
-
-def explicit_csr(spec, grid: Grid, factors: list[Factor], tables: dict[str, np.ndarray],
-                 max_states: int = 3_000_000, chunk_entries: int = 4_000_000) -> sp.csr_matrix:
-    """P as a scipy CSR matrix, built by enumerating every (state, next random levels) pair.
-
-    Independent of the structured apply (it walks the draws forward), so it doubles as a
-    cross-check. Memory grows with the number of non-zeros; refused above ``max_states``."""
-    n = grid.size
-    if n > max_states:
-        from stateworth.errors import GridTooLargeError
-        raise GridTooLargeError(f"explicit matrix export is for grids up to {max_states:,} states; this one has {n:,}")
-    names = list(grid.names)
-    pos = {nm: i for i, nm in enumerate(names)}
-    kinds = {a.name: a.kind for a in grid.axes}
-    status = spec.status_axis
-    rnd = [f.axis for f in factors]
-    rsizes = [grid.axis(r).size for r in rnd]
-    K = int(np.prod(rsizes))
-    combos = [c.reshape(-1) for c in np.indices(rsizes)]  # next levels of random axes, (K,)
-    nxt = {r: combos[i][None, :] for i, r in enumerate(rnd)}
-    counters = {a.name: counter_index(spec, a.name) for a in grid.axes if a.kind == "counter"}
-    B = max(1, chunk_entries // K)
-    rows_all, cols_all, vals_all = [], [], []
-    for start in range(0, n, B):
-        flat = np.arange(start, min(n, start + B))
-        cur_codes = np.unravel_index(flat, grid.shape)
-        cur = {nm: cur_codes[i][:, None] for i, nm in enumerate(names)}
-        prob = np.ones((len(flat), K))
-        for f in factors:
-            idx = []
-            for g in f.given:
-                idx.append(nxt[g[5:]] if g.startswith("next.") else cur[g])
-            idx.append(nxt[f.axis])
-            prob = prob * tables[f.axis][tuple(np.broadcast_arrays(*idx))]
-        next_codes = []
-        for nm in names:
-            k = kinds[nm]
-            if k == "fixed":
-                next_codes.append(np.broadcast_to(cur[nm], prob.shape))
-            elif k == "cycle":
-                size = grid.axis(nm).size
-                next_codes.append(np.broadcast_to((cur[nm] + 1) % size, prob.shape))
-            elif k == "counter":
-                next_codes.append(counters[nm][cur[nm], cur[status], nxt[status]])
-            else:
-                next_codes.append(np.broadcast_to(nxt[nm], prob.shape))
-        col = np.ravel_multi_index([np.broadcast_to(c, prob.shape) for c in next_codes], grid.shape)
-        keep = prob > 0
-        rows_all.append(np.broadcast_to(flat[:, None], prob.shape)[keep])
-        cols_all.append(col[keep])
-        vals_all.append(prob[keep])
-    rows = np.concatenate(rows_all)
-    cols = np.concatenate(cols_all)
-    vals = np.concatenate(vals_all)
-    m = sp.csr_matrix((vals, (rows, cols)), shape=(n, n))
-    m.sum_duplicates()
-    return m
