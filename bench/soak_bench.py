@@ -336,9 +336,17 @@ def run(args: argparse.Namespace) -> dict:
     b = variant(args.size, 9, 0, name="soak-b")
     model, model_b = variants[0].name, b.name
     grid = variants[0].grid
+    from stateworth.valuation.reach import reachable
+
+    # states a customer can be in under every variant (others are refused as impossible)
+    ok = np.logical_and.reduce([reachable(m) for m in (*variants, b)])
     rng = np.random.default_rng(0)
-    codes = rng.integers(0, grid.shape, size=(args.probes, len(grid.shape)))
-    codes[: args.probes // 4, grid.names.index("status")] = 0  # a quarter are prospects (contrasts)
+    status = np.unravel_index(np.arange(grid.size if hasattr(grid, "size") else int(np.prod(grid.shape))),
+                              grid.shape)[grid.names.index("status")]
+    prospects, members = np.flatnonzero(ok & (status == 0)), np.flatnonzero(ok & (status != 0))
+    n_p = args.probes // 4  # a quarter are prospects (contrasts)
+    flat = np.concatenate([rng.choice(prospects, n_p), rng.choice(members, args.probes - n_p)])
+    codes = np.stack(np.unravel_index(flat, grid.shape), axis=1)
     probes = [{a.name: a.levels[int(c)] for a, c in zip(grid.axes, row)} for row in codes]
     for j, row in enumerate(codes):
         _INDEX[j] = int(np.ravel_multi_index(tuple(int(x) for x in row), grid.shape))

@@ -717,6 +717,17 @@ def clean_leftovers(root: str | Path) -> list[dict[str, str]]:
     return done
 
 
+def clean_model_folder(folder: str | Path) -> list[dict[str, str]]:
+    """:func:`clean_leftovers` for one model folder (a server serving that folder alone): its
+    leftover versions, links and locks; paths relative to the folder's parent."""
+    folder = Path(folder)
+    try:
+        done = _clean_model_dir(folder)
+    except OSError:
+        return []
+    return [{"action": a, "path": str(q.relative_to(folder.parent)), "why": w} for a, q, w in done]
+
+
 def _untidy(folder: Path) -> bool:
     """Whether a model folder holds anything :func:`_clean_model_dir` would look at (checked
     first, so tidy folders are only listed, never locked or written to)."""

@@ -3,8 +3,9 @@
 Start-up order: listen (health NOT_SERVING), load and solve every artifact of the model
 directory, then SERVING. A worker of ``stateworth serve --workers N`` (``worker_index`` set,
 see :mod:`.supervisor`) loads first and listens after, on a port it shares with the other
-workers, and relays admin loads through its supervisor (:mod:`.peers`). Health stays NOT_SERVING while no model is loaded (an empty model
-directory is allowed: load one later with the admin LoadModel call). SIGTERM or SIGINT: health
+workers, and relays admin loads through its supervisor (:mod:`.peers`). Health stays NOT_SERVING while no model is loaded (a folder without
+any model is refused at start unless ``allow_empty``: then load one later with the admin
+LoadModel call). SIGTERM or SIGINT: health
 turns NOT_SERVING, new calls are refused, calls in flight get ``drain_seconds`` to finish, then
 the process exits with status 0. The stop is bounded whatever the calls do: past the drain time
 plus :data:`STOP_SLACK_SECONDS` the server stops without them (``stop_forced`` in the log), and
@@ -33,10 +34,11 @@ from grpc_reflection.v1alpha import reflection
 
 from stateworth.errors import StateworthError
 from stateworth.server import logs
+from stateworth.server.errors import ConfigError
 from stateworth.server.interceptors import CallInterceptor
 from stateworth.server.metrics import Metrics, serve_metrics
 from stateworth.server.service import AdminServicer, Limits, ValuationServicer
-from stateworth.server.store import ModelStore, Snapshot
+from stateworth.server.store import ModelStore, Snapshot, check_served_path
 from stateworth.server.work import WorkPool
 from stateworth.v1 import admin_service_pb2, admin_service_pb2_grpc, valuation_service_pb2, valuation_service_pb2_grpc
 
@@ -47,10 +49,6 @@ LOOPBACK = ("127.0.0.1", "::1", "localhost")
 STOP_SLACK_SECONDS = 5.0
 SERVICE_NAMES = (valuation_service_pb2.DESCRIPTOR.services_by_name["ValuationService"].full_name,
                  admin_service_pb2.DESCRIPTOR.services_by_name["ModelAdminService"].full_name)
-
-
-class ConfigError(StateworthError):
-    """A server option is wrong (a file that cannot be read, a TLS half-pair...)."""
 
 
 @dataclass
@@ -76,6 +74,10 @@ class ServerConfig:
     work_workers: int = 2
     work_queue: int = 8
     work_cache: int = 256
+    #: default versions marked by the operator (model name -> version; ``serve --default``)
+    defaults: dict[str, str] = field(default_factory=dict)
+    #: start on a folder without any model (models loaded later by an admin call)
+    allow_empty: bool = False
     #: bytes the solve cache may hold (LRU beyond)
     work_cache_bytes: int = 256 * 1024**2
     #: bytes the finite-horizon values of all models may hold (LRU beyond)
@@ -111,7 +113,8 @@ class Server:
     def __init__(self, config: ServerConfig) -> None:
         self.config = config
         self.metrics = Metrics()
-        self.store = ModelStore(config.model_dir, build=config.build, horizon_cache_bytes=config.horizon_cache_bytes)
+        self.store = ModelStore(config.model_dir, build=config.build, horizon_cache_bytes=config.horizon_cache_bytes,
+                                defaults=config.defaults)
         self.pool = WorkPool(config.work_workers, config.work_queue, config.work_cache, config.work_seconds,
                              cache_bytes=config.work_cache_bytes)
         self.health = health.HealthServicer()
@@ -201,6 +204,8 @@ class Server:
         return bound
 
     def start(self, load: bool = True) -> "Server":
+        if load:
+            check_served_path(Path(self.config.model_dir), self.config.allow_empty)
         if self.peers is not None:
             return self._start_worker()
         self.port = self._bind()

@@ -17,6 +17,10 @@ from grpc_status import rpc_status
 from stateworth.errors import ConvergenceError, QueryError, StateworthError
 
 
+class ConfigError(StateworthError):
+    """A server option is wrong (a file that cannot be read, a TLS half-pair...)."""
+
+
 class ServiceError(StateworthError):
     """A refusal with a gRPC status code; ``field`` (optional) is the field violation to attach."""
 

@@ -127,7 +127,8 @@ class ValuationServicer(vgrpc.ValuationServiceServicer):
         out = pb.ListModelsResponse()
         for name in sorted(snap.models):
             versions = sorted(snap.models[name].values(), key=lambda s: (-s.mtime, s.artifact))
-            m = out.models.add(name="models/" + name, default_version=snap.defaults[name])
+            m = out.models.add(name="models/" + name, default_version=snap.defaults[name],
+                               default_reason=snap.default_reasons.get(name, ""))
             for s in versions:
                 m.versions.append(cv.model_version(s, s.version == snap.defaults[name], full=False))
         return out

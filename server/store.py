@@ -15,8 +15,12 @@ keeps serving the version it had (its outcome says why), a folder that is gone i
 served. A single load (``load_one``) that fails leaves the snapshot untouched. Before scanning,
 what interrupted writes left is removed (or moved back), one log line each.
 
-The default version of a model (the one that answers requests that pin none) is the version
-whose artifact was written last (manifest modification time; ties by artifact directory name).
+The served path is a folder of model folders, or one model folder (then it alone is served).
+The default version of a model (the one that answers requests that pin none) is the version the
+operator marks (``serve --default NAME=VERSION``, else the folder's :data:`DEFAULTS_FILE`), else
+the version written last (by ``fit`` or ``solve --save``: its manifest's modification time; ties
+by artifact directory name). A marked version that is not served falls back to the newest, with
+a warning; every change of a default is logged (``default_changed``).
 """
 
 from __future__ import annotations
@@ -121,6 +125,8 @@ class Snapshot:
     models: dict[str, dict[str, Served]] = field(default_factory=dict)
     defaults: dict[str, str] = field(default_factory=dict)
     generation: int = 0
+    #: why each default is the default: MARKED_OPTION, MARKED_FILE or NEWEST
+    default_reasons: dict[str, str] = field(default_factory=dict)
 
     @property
     def empty(self) -> bool:
@@ -173,10 +179,79 @@ def _diagnostics(files: Path, manifest: dict, root: Path) -> dict:
 def model_folders(root: Path) -> list[Path]:
     """The entries of ``root`` that may be model folders: visible directories (links included:
     loading refuses those that lead outside ``root``). Names starting with a dot are writers'
-    temporary directories and are skipped."""
+    temporary directories and are skipped. ``root`` itself when it is a model folder."""
     if not root.is_dir():
         raise LoadError(f"model directory {root} does not exist or is not a directory")
+    if _looks_like_model(root):
+        return [root]
     return sorted(p for p in root.iterdir() if not p.name.startswith(".") and p.is_dir())
+
+
+def check_served_path(root: Path, allow_empty: bool = False) -> None:
+    """ConfigError (``serve`` exits 1) unless ``root`` is a model folder or a folder holding at
+    least one (``allow_empty``: a folder without one yet, for models loaded later by an admin
+    call)."""
+    from stateworth.server.errors import ConfigError
+
+    if not root.exists():
+        raise ConfigError("does not exist; give a model folder (written by `stateworth fit -o` or "
+                          "`stateworth solve --save`) or a folder of them", where=str(root))
+    if not root.is_dir():
+        raise ConfigError("is a file, not a folder; give a model folder or a folder of model folders",
+                          where=str(root))
+    if allow_empty or _looks_like_model(root):
+        return
+    if not any(_looks_like_model(p) for p in model_folders(root)):
+        raise ConfigError("holds no model folder (a folder with a current link or a manifest.json); write one "
+                          "with `stateworth fit -o` or `stateworth solve --save`, or pass --allow-empty to start "
+                          "without models and load them later with an admin call", where=str(root))
+
+
+#: the file in a folder of model folders that marks default versions (see :func:`read_defaults`)
+DEFAULTS_FILE = "defaults.toml"
+#: why a version is its model's default
+MARKED_OPTION, MARKED_FILE, NEWEST = "marked by --default", f"marked in {DEFAULTS_FILE}", "newest written"
+
+
+def parse_default(text: str) -> tuple[str, str]:
+    """``NAME=VERSION`` (a ``serve --default`` value) -> (name, version); ConfigError otherwise."""
+    from stateworth.server.errors import ConfigError
+
+    name, sep, version = text.partition("=")
+    name, version = name.strip(), version.strip()
+    if name.startswith(PREFIX):
+        name = name[len(PREFIX):]
+    if not sep or not name or not version or "/" in name:
+        raise ConfigError(f"'{text}' is not NAME=VERSION (e.g. fitness-demo=3fa9c2d1; `stateworth query models` "
+                          "lists the versions)", where="--default")
+    return name, version
+
+
+def read_defaults(root: Path) -> dict[str, str]:
+    """The marks of ``root/defaults.toml``: a table ``[default_versions]`` of model name ->
+    version, e.g. ``fitness-demo = "3fa9c2d1"``. Empty when there is no such file; ConfigError
+    naming the file and key when it cannot be read or has another shape."""
+    import tomllib
+
+    from stateworth.server.errors import ConfigError
+
+    path = root / DEFAULTS_FILE
+    if not path.is_file():
+        return {}
+    try:
+        doc = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as e:
+        raise ConfigError(f"cannot be read as TOML ({e}); write [default_versions] with lines NAME = \"VERSION\"",
+                          where=str(path)) from None
+    extra = sorted(set(doc) - {"default_versions"})
+    table = doc.get("default_versions", {})
+    if extra or not isinstance(table, dict):
+        raise ConfigError(f"unknown key(s) {', '.join(extra) or 'default_versions'}; the file holds one table "
+                          "[default_versions] with lines NAME = \"VERSION\"", where=str(path))
+    bad = [k for k, v in table.items() if not isinstance(v, str) or not v.strip()]
+    if bad:
+        raise ConfigError(f"default_versions.{bad[0]} must be a version text (e.g. \"3fa9c2d1\")", where=str(path))
+    return {k: v.strip() for k, v in table.items()}
 
 
 def check_artifact_name(artifact: str) -> None:
@@ -237,7 +312,7 @@ class ModelStore:
     it down to widen the reload window)."""
 
     def __init__(self, root: str | Path, build: Callable[[Any], Any] | None = None,
-                 horizon_cache_bytes: int | None = None) -> None:
+                 horizon_cache_bytes: int | None = None, defaults: Mapping[str, str] | None = None) -> None:
         from stateworth.valuation.solved import HORIZON_CACHE_BYTES, HorizonCache
 
         self.root = Path(root)
@@ -245,6 +320,9 @@ class ModelStore:
         self._reload_lock = threading.Lock()
         self._build = build
         self.listeners: list[Callable[[Snapshot], None]] = []
+        #: default versions marked on the command line (they win over the defaults file)
+        self.marked = dict(defaults or {})
+        self._file_marks: dict[str, str] = {}
         #: finite-horizon values of every served model, within one byte bound (LRU)
         self.horizons = HorizonCache(HORIZON_CACHE_BYTES if horizon_cache_bytes is None else horizon_cache_bytes)
 
@@ -304,16 +382,50 @@ class ModelStore:
                       manifest=manifest, diagnostics=_diagnostics(files, manifest, self.root), mtime=mtime,
                       load_time=time.time(), build_seconds=time.perf_counter() - t0)
 
-    @staticmethod
-    def _assemble(served: list[Served], generation: int) -> Snapshot:
+    @property
+    def single(self) -> bool:
+        """Whether the served path is one model folder (not a folder of them)."""
+        return _looks_like_model(self.root)
+
+    def _read_marks(self) -> None:
+        """Re-read the defaults file (a reload picks up an edit); on a bad file keep the marks
+        read before and log why."""
+        if self.single:
+            return
+        try:
+            self._file_marks = read_defaults(self.root)
+        except StateworthError as e:
+            log.warning("defaults file not read; the defaults marked before are kept", extra={"fields": {
+                "event": "defaults_file_error", "error": str(e)}})
+
+    def _assemble(self, served: list[Served], generation: int) -> Snapshot:
         models: dict[str, dict[str, Served]] = {}
         for s in served:
             models.setdefault(s.name, {}).setdefault(s.version, s)
-        defaults = {name: max(vs.values(), key=lambda s: (s.mtime, s.artifact)).version
-                    for name, vs in models.items()}
-        return Snapshot(models=models, defaults=defaults, generation=generation)
+        defaults, reasons = {}, {}
+        for name, vs in models.items():
+            for marks, why in ((self.marked, MARKED_OPTION), (self._file_marks, MARKED_FILE)):
+                v = marks.get(name)
+                if v is None:
+                    continue
+                if v in vs:
+                    defaults[name], reasons[name] = v, why
+                    break
+                log.warning("the version marked as default is not served; the newest answers", extra={"fields": {
+                    "event": "default_not_served", "model": name, "marked": v, "by": why,
+                    "served": sorted(vs)}})
+            if name not in defaults:
+                defaults[name] = max(vs.values(), key=lambda s: (s.mtime, s.artifact)).version
+                reasons[name] = NEWEST
+        return Snapshot(models=models, defaults=defaults, generation=generation, default_reasons=reasons)
 
     def _swap(self, snap: Snapshot) -> None:
+        old = self._snapshot
+        for name, v in sorted(snap.defaults.items()):
+            if old.defaults.get(name) != v:
+                log.info("default version changed", extra={"fields": {
+                    "event": "default_changed", "model": name, "from": old.defaults.get(name), "to": v,
+                    "why": snap.default_reasons.get(name)}})
         self._snapshot = snap
         for fn in self.listeners:
             fn(snap)
@@ -323,7 +435,14 @@ class ModelStore:
         each (see :func:`stateworth.rules.artifact.clean_leftovers`)."""
         from stateworth.rules.artifact import clean_leftovers
 
-        done = clean_leftovers(self.root) if self.root.is_dir() else []
+        from stateworth.rules.artifact import clean_model_folder
+
+        if not self.root.is_dir():
+            done = []
+        elif self.single:
+            done = clean_model_folder(self.root)
+        else:
+            done = clean_leftovers(self.root)
         for d in done:
             log.warning(f"leftover of an interrupted write {d['action']}", extra={"fields": {
                 "event": "leftover", **d}})
@@ -339,6 +458,7 @@ class ModelStore:
         nothing was served before and no folder could be loaded."""
         with self._reload_lock:
             self.clean()
+            self._read_marks()
             old = self._snapshot
             reuse = {s.content_hash: s for s in old.all()}
             before: dict[str, list[Served]] = {}
@@ -390,7 +510,7 @@ class ModelStore:
         Returns (served, replaced): ``replaced`` when the artifact previously served another
         version (that version is dropped). Raises LoadError / QueryError (snapshot unchanged)."""
         check_artifact_name(artifact)
-        path = self.root / artifact
+        path = self.root if self.single and artifact == self.root.name else self.root / artifact
         try:
             present = path.is_dir() and _looks_like_model(path)
         except OSError:
@@ -399,6 +519,7 @@ class ModelStore:
             raise NotFoundError(f"no artifact '{artifact}' in the model directory (no model folder of that name)",
                                 field="artifact")
         with self._reload_lock:
+            self._read_marks()
             old = self._snapshot
             reuse = {s.content_hash: s for s in old.all()}
             s = self._load(path, reuse)

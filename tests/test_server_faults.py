@@ -337,7 +337,7 @@ def test_a_port_in_use_is_a_one_line_error(tmp_path):
         s.bind(("127.0.0.1", 0))
         s.listen()
         port = s.getsockname()[1]
-        r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", str(port)],
+        r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", str(port), "--allow-empty"],
                            capture_output=True, text=True, cwd=ROOT, timeout=120)
     assert r.returncode == 1, r.stderr
     err = [line for line in r.stderr.splitlines() if line.startswith("error:")]

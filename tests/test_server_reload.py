@@ -1,6 +1,6 @@
 """Loading and reloading under load, health while nothing is loaded, and the SIGTERM drain.
 
-The server starts on an empty model directory (health NOT_SERVING, queries UNAVAILABLE), gets
+The server starts on an empty model directory (`--allow-empty`; health NOT_SERVING, queries UNAVAILABLE), gets
 a model by an admin load, then serves continuous traffic from several threads while the
 artifact is rewritten and reloaded: no call may fail, every answer names a version, all the
 values answered by one version are identical (a batch is never mixed), and once a reload has
@@ -22,7 +22,7 @@ from stateworth.clients import client as cl
 @pytest.fixture(scope="module")
 def empty_server(tmp_path_factory):
     d = tmp_path_factory.mktemp("reload-models")
-    srv = ServerProcess(d, "--drain-seconds", "30", "--admin-open")
+    srv = ServerProcess(d, "--drain-seconds", "30", "--admin-open", "--allow-empty")
     yield srv, d
     srv.stop()
 

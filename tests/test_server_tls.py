@@ -138,13 +138,13 @@ def test_tls_beyond_loopback_without_tokens_is_warned_about(tmp_path):
     cert, key = _self_signed(tmp_path)
     models = tmp_path / "models"
     models.mkdir()
-    srv = ServerProcess(models, "--host", "127.0.0.2", "--tls-cert", str(cert), "--tls-key", str(key))
+    srv = ServerProcess(models, "--allow-empty", "--host", "127.0.0.2", "--tls-cert", str(cert), "--tls-key", str(key))
     try:
         warned = srv.wait_for("tls_without_tokens", timeout=60)
         assert warned["level"] == "warning" and warned["host"] == "127.0.0.2"
     finally:
         assert srv.stop() == 0
-    quiet = ServerProcess(models, "--tls-cert", str(cert), "--tls-key", str(key))  # on loopback: no warning
+    quiet = ServerProcess(models, "--allow-empty", "--tls-cert", str(cert), "--tls-key", str(key))  # on loopback: no warning
     try:
         quiet.wait_for("serving")
     finally:

@@ -145,7 +145,7 @@ def test_ports_in_use_are_refused_in_one_line(workers, tmp_path):
     srv, _d, _v1 = workers
     for args, where in ((["--port", str(srv.port)], "--port"),
                         (["--port", "0", "--worker-ports", str(_serving(srv)["worker_ports"][0])], "--worker-ports")):
-        r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--workers", "2", *args],
+        r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--workers", "2", "--allow-empty", *args],
                            capture_output=True, text=True, cwd=ROOT, timeout=120)
         assert r.returncode == 1, r.stderr
         assert where in r.stderr and "in use" in r.stderr and "Traceback" not in r.stderr
@@ -197,7 +197,7 @@ def test_a_worker_that_cannot_start_fails_the_command(tmp_path):
 @pytest.mark.parametrize("args, message", [(["--workers", "0"], "--workers must be at least 1"),
                                            (["--workers", "2", "--worker-ports", "65535"], "--worker-ports")])
 def test_bad_worker_options_are_refused_in_one_line(tmp_path, args, message):
-    r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", "0", *args],
+    r = subprocess.run([sys.executable, "-m", "stateworth", "serve", str(tmp_path), "--port", "0", "--allow-empty", *args],
                        capture_output=True, text=True, cwd=ROOT, timeout=120)
     assert r.returncode == 1
     assert message in r.stderr and "Traceback" not in r.stderr

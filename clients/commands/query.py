@@ -167,7 +167,8 @@ def run(args: argparse.Namespace) -> int:
     with client:
         if a == "models":
             r = client.list_models()
-            lines = [f"{m.name}  default {m.default_version}  versions "
+            lines = [f"{m.name}  default {m.default_version}"
+                     + (f" ({m.default_reason})" if m.default_reason else "") + "  versions "
                      + ", ".join(f"{v.version} ({v.artifact}, {v.state_count:,} states)" for v in m.versions)
                      for m in r.models] or ["no models loaded"]
             _print(r, args.json, "\n".join(lines))

@@ -6,10 +6,11 @@ import argparse
 
 NAME = "serve"
 HELP = "serve the models of a directory over gRPC (values, contrasts, changes, read-outs)"
-DESCRIPTION = """Serve every compiled model in MODEL_DIR over gRPC (package stateworth.v1).
+DESCRIPTION = """Serve the compiled models of MODEL_DIR over gRPC (package stateworth.v1).
 
-MODEL_DIR holds artifact directories (manifest.json + arrays.npz, as `stateworth fit` or
-`stateworth solve --save` write them). Each is verified and solved at start; the admin calls
+MODEL_DIR is one model folder or a folder of model folders (as `stateworth fit -o` or
+`stateworth solve --save` write them); one without any model is refused (exit 1) unless
+--allow-empty. Each is verified at start and its stored values read; the admin calls
 LoadModel / ReloadModels load changed artifacts off to the side and swap them in atomically;
 a model folder that cannot be loaded keeps serving the version it had. Admin calls are off
 unless --admin-token-file is given (or --admin-open, for local development on loopback).
@@ -18,6 +19,11 @@ lines on stderr; --metrics-port serves Prometheus metrics at http://127.0.0.1:PO
 SIGTERM drains the calls in flight (--drain-seconds) and exits 0, at most a few seconds after
 the drain time whatever the calls do. Health: grpc.health.v1, NOT_SERVING while no
 model is loaded.
+
+Several versions of one model (folders holding the same model name) are served side by side;
+requests that pin no version get the default: the one marked by --default NAME=VERSION, else
+by MODEL_DIR/defaults.toml ([default_versions] with lines NAME = "VERSION", re-read on every
+reload), else the newest written. A change of default is logged (event default_changed).
 
 --workers N runs N server processes on the one port (SO_REUSEPORT: the kernel spreads new
 connections over them) under a supervisor that restarts a worker that dies, runs admin loads
@@ -31,11 +37,19 @@ example:
   stateworth serve demo-out/models --port 50051 --token-file query.token --admin-token-file admin.token
   stateworth serve demo-out/models --workers 2 --metrics-port 9464
   stateworth serve demo-out/models --admin-open
+  stateworth serve demo-out/models/fitted
+  stateworth serve demo-out/models --default fitness-demo=3fa9c2d1
 """
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("model_dir", metavar="MODEL_DIR", help="directory of compiled model artifacts")
+    p.add_argument("model_dir", metavar="MODEL_DIR",
+                   help="a model folder (written by fit -o or solve --save), or a folder of model folders")
+    p.add_argument("--default", action="append", default=[], metavar="NAME=VERSION",
+                   help="the version that answers requests pinning none (repeatable; wins over the folder's "
+                        "defaults.toml; otherwise the newest written)")
+    p.add_argument("--allow-empty", action="store_true",
+                   help="start on a folder without any model yet (load models later with an admin call)")
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default loopback 127.0.0.1)")
     p.add_argument("--port", type=int, default=50051, help="port (default 50051; 0 picks a free one)")
     p.add_argument("--tls-cert", help="PEM certificate chain file (with --tls-key: serve TLS)")
@@ -100,7 +114,8 @@ def run(args: argparse.Namespace) -> int:
     config = ServerConfig(model_dir=args.model_dir, host=args.host, port=args.port, tls_cert=args.tls_cert,
                           tls_key=args.tls_key, token=read_secret(args.token_file, "token"),
                           admin_token=read_secret(args.admin_token_file, "admin token"),
-                          admin_open=args.admin_open, threads=args.threads,
+                          admin_open=args.admin_open, threads=args.threads, defaults=_defaults(args),
+                          allow_empty=args.allow_empty,
                           max_concurrent=args.max_concurrent, max_message_bytes=int(args.max_message_mb * 2**20),
                           max_batch=args.max_batch, work_workers=args.work_workers, work_queue=args.work_queue,
                           work_seconds=args.work_seconds, drain_seconds=args.drain_seconds,
@@ -122,6 +137,17 @@ _PASSED = [("--host", "host"), ("--tls-cert", "tls_cert"), ("--tls-key", "tls_ke
            ("--drain-seconds", "drain_seconds"), ("--log-level", "log_level"), ("--log-flush-ms", "log_flush_ms")]
 
 
+def _defaults(args: argparse.Namespace) -> dict[str, str]:
+    """``--default NAME=VERSION`` values as a mapping (ConfigError names a malformed one)."""
+    from stateworth.server.store import parse_default
+
+    out: dict[str, str] = {}
+    for text in args.default:
+        name, version = parse_default(text)
+        out[name] = version
+    return out
+
+
 def _supervise(args: argparse.Namespace) -> int:
     """``--workers N``: check what every worker would refuse, then run the supervisor."""
     import sys
@@ -132,8 +158,12 @@ def _supervise(args: argparse.Namespace) -> int:
 
     from stateworth.server.app import LOOPBACK
 
+    from stateworth.server.store import check_served_path
+
     read_secret(args.token_file, "token")
     read_secret(args.admin_token_file, "admin token")
+    check_served_path(Path(args.model_dir), args.allow_empty)
+    _defaults(args)
     if args.admin_open and args.admin_token_file:
         raise ConfigError("--admin-open and --admin-token-file contradict each other; give one", where="--admin-open")
     if args.admin_open and args.host not in LOOPBACK:
@@ -162,6 +192,10 @@ def _supervise(args: argparse.Namespace) -> int:
             out.append("--no-access-log")
         if args.admin_open:
             out.append("--admin-open")
+        if args.allow_empty:
+            out.append("--allow-empty")
+        for d in args.default:
+            out += ["--default", d]
         return out
 
     if args.worker_ports < 0 or args.worker_ports + args.workers > 65536:

@@ -87,11 +87,13 @@ class ModelVersion(_message.Message):
     def __init__(self, name: _Optional[str] = ..., version: _Optional[str] = ..., content_hash: _Optional[str] = ..., artifact: _Optional[str] = ..., default_version: _Optional[bool] = ..., state_count: _Optional[int] = ..., axes: _Optional[_Iterable[_Union[Axis, _Mapping]]] = ..., reward_streams: _Optional[_Iterable[_Union[RewardStream, _Mapping]]] = ..., currency: _Optional[str] = ..., discounting: _Optional[_Union[Discounting, _Mapping]] = ..., solve_statistics: _Optional[_Union[SolveStatistics, _Mapping]] = ..., fit_diagnostics: _Optional[_Union[_struct_pb2.Struct, _Mapping]] = ..., load_time: _Optional[_Union[datetime.datetime, _timestamp_pb2.Timestamp, _Mapping]] = ...) -> None: ...
 
 class Model(_message.Message):
-    __slots__ = ("name", "default_version", "versions")
+    __slots__ = ("name", "default_version", "versions", "default_reason")
     NAME_FIELD_NUMBER: _ClassVar[int]
     DEFAULT_VERSION_FIELD_NUMBER: _ClassVar[int]
     VERSIONS_FIELD_NUMBER: _ClassVar[int]
+    DEFAULT_REASON_FIELD_NUMBER: _ClassVar[int]
     name: str
     default_version: str
     versions: _containers.RepeatedCompositeFieldContainer[ModelVersion]
-    def __init__(self, name: _Optional[str] = ..., default_version: _Optional[str] = ..., versions: _Optional[_Iterable[_Union[ModelVersion, _Mapping]]] = ...) -> None: ...
+    default_reason: str
+    def __init__(self, name: _Optional[str] = ..., default_version: _Optional[str] = ..., versions: _Optional[_Iterable[_Union[ModelVersion, _Mapping]]] = ..., default_reason: _Optional[str] = ...) -> None: ...
